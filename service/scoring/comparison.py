@@ -301,8 +301,9 @@ def _difference_on(
     w: NDArray[np.float64] | None,
     rows: NDArray[np.intp] | NDArray[np.bool_],
 ) -> float:
+    yr = y[rows]
     wr = None if w is None else w[rows]
-    return float(metric_fn(y[rows], a[rows], wr)) - float(metric_fn(y[rows], b[rows], wr))
+    return float(metric_fn(yr, a[rows], wr)) - float(metric_fn(yr, b[rows], wr))
 
 
 def _jackknife_differences(
