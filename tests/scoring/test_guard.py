@@ -443,11 +443,3 @@ def test_bad_alpha_is_refused(alpha: object) -> None:
     with pytest.raises(ScoringInputError) as err:
         adaptive_overfit_test(np.ones(3), np.ones(3), alpha=alpha)  # type: ignore[arg-type]
     assert err.value.field == "alpha"
-
-
-def test_proxy_table_agrees_with_the_metric_catalog() -> None:
-    # Two tables name a per-row loss per metric (catalog.MetricInfo.row_loss, ours); they
-    # must not drift apart.
-    catalog = pytest.importorskip("service.scoring.catalog")
-    for name, info in catalog.METRICS.items():
-        assert proxy_loss_name(name) == info.row_loss, name
