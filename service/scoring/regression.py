@@ -1,0 +1,797 @@
+"""Regression metrics across seeds: one fused pass, intervals, bias-variance, flags.
+
+Naming law (as in ``sklearn.metrics``): ``*_score`` is higher-is-better, ``*_error`` and
+``*_loss`` lower-is-better. Our metric keys are short and fixed (``METRICS``):
+
+=========================  ==============================================  ==========
+key                        scikit-learn reference                          direction
+=========================  ==============================================  ==========
+``mse``                    ``mean_squared_error``                          lower
+``rmse``                   ``root_mean_squared_error``                     lower
+``mae``                    ``mean_absolute_error``                         lower
+``median_absolute_error``  ``median_absolute_error``                       lower
+``max_error``              ``max_error``                                   lower
+``r2``                     ``r2_score`` (``force_finite=True``)            higher
+``explained_variance``     ``explained_variance_score`` (``force_finite``)  higher
+``mape``                   ``mean_absolute_percentage_error``              lower
+=========================  ==============================================  ==========
+
+Each metric agrees with scikit-learn to about 1e-12 relative, including its edge cases:
+
+- constant targets: R^2 and explained variance are 1.0 for perfect predictions and 0.0
+  otherwise (scikit-learn's ``force_finite=True``);
+- a single row: R^2 is NaN (scikit-learn warns and returns NaN; we return NaN silently and
+  say so in ``Report.details["notes"]``);
+- zero targets: MAPE divides by ``max(|y|, eps)`` with eps the float64 machine epsilon
+  (about 2.2e-16), so one zero target with a non-zero error makes MAPE astronomically large
+  (about 4.5e15 times the error). We match that and report the count of zero targets in
+  ``details["mape_zero_targets"]``;
+- weights: as ``sample_weight`` in scikit-learn; the weighted median is scikit-learn's
+  ``_weighted_percentile(..., average=True)`` (the averaged inverted CDF).
+
+Where we differ (documented and tested): scikit-learn's ``max_error`` takes no weights;
+with weights we take the maximum over rows of positive weight (a zero weight excludes a
+row from every metric, consistently).
+
+Shapes: ``y_true`` (n,); ``predictions`` (K, n) for K seeds, or (n,) for one.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from ._checks import ScoringInputError, as_seed_predictions, as_targets, as_weights
+from .intervals import (
+    delta_ratio_interval,
+    monotone_interval,
+    no_interval,
+    normal_interval,
+    order_statistic_ranks,
+    seed_mean_interval,
+    select_order_statistics,
+    z_value,
+)
+from .options import ScoringOptions
+from .results import Decomposition, Interval, Report, Spread
+
+METRICS: tuple[str, ...] = (
+    "mse",
+    "rmse",
+    "mae",
+    "median_absolute_error",
+    "max_error",
+    "r2",
+    "explained_variance",
+    "mape",
+)
+"""The regression metric keys, in report order."""
+
+MAPE_EPSILON: float = float(np.finfo(np.float64).eps)
+"""MAPE's denominator floor, ``max(|y|, MAPE_EPSILON)``, as in scikit-learn."""
+
+_CHUNK = 65_536
+"""Rows per block of the fused pass: the block's working arrays stay in the core's cache."""
+
+_BRACKET_MIN_ROWS = 1 << 16
+"""From this many rows on, the median is selected by a sampled bracket (``_OrderStatistics``)."""
+
+_SAMPLE_SIZE = 1 << 14
+"""Rows sampled per seed to place the bracket around the median."""
+
+_SAMPLE_SEED = 1_202_2026
+"""Fixed seed of the bracket's row sample: the same input always takes the same path."""
+
+_BRACKET_Z = 5.0
+"""Bracket margin in binomial standard deviations of the sample rank (miss chance ~ 1e-6)."""
+
+_EV_EXACT_SHARE = 0.5
+"""Explained variance's numerator is var(r) = mean(r^2) - mean(r)^2; when mean(r)^2 is at
+least this share of mean(r^2) the subtraction could lose digits, so that seed is recomputed
+with scikit-learn's two-pass formula instead."""
+
+
+# --------------------------------------------------------------------------------------
+# Fused pass
+# --------------------------------------------------------------------------------------
+
+
+@dataclass
+class _TargetStats:
+    """What the metrics need from the targets alone, computed once per set of rows."""
+
+    y: NDArray[np.float64]
+    weights: NDArray[np.float64] | None
+    weight_sum: float
+    mean: float
+    centred_sq: NDArray[np.float64]  # (y - mean)^2, shape (n,)
+    r2_denominator: float  # sum w (y - mean)^2, as in r2_score
+    ev_denominator: float  # weighted mean of (y - mean)^2, as in explained_variance_score
+    inverse_scale: NDArray[np.float64]  # 1 / max(|y|, eps), shape (n,)
+    weighted_inverse_scale: NDArray[np.float64]  # w / max(|y|, eps) (or the same array)
+    positive: NDArray[np.bool_] | None  # rows of positive weight (weights only)
+    zero_targets: int
+
+
+def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _TargetStats:
+    mean = float(np.average(y, weights=w))
+    centred_sq = y - mean
+    np.multiply(centred_sq, centred_sq, out=centred_sq)
+    if w is None:
+        r2_den = float(centred_sq.sum())
+        ev_den = float(centred_sq.mean())
+        weight_sum = float(y.size)
+    else:
+        r2_den = float(np.multiply(w, centred_sq).sum())
+        ev_den = float(np.average(centred_sq, weights=w))
+        weight_sum = float(w.sum())
+    abs_y = np.abs(y)
+    zero_targets = int(np.count_nonzero(abs_y == 0.0))
+    inverse_scale = np.maximum(abs_y, MAPE_EPSILON, out=abs_y)
+    np.divide(1.0, inverse_scale, out=inverse_scale)
+    return _TargetStats(
+        y=y,
+        weights=w,
+        weight_sum=weight_sum,
+        mean=mean,
+        centred_sq=centred_sq,
+        r2_denominator=r2_den,
+        ev_denominator=ev_den,
+        inverse_scale=inverse_scale,
+        weighted_inverse_scale=inverse_scale if w is None else w * inverse_scale,
+        positive=None if w is None else w > 0,
+        zero_targets=zero_targets,
+    )
+
+
+@dataclass
+class _PassResult:
+    """Per-seed sums of one fused pass (weighted sums when weights are given)."""
+
+    sum_residual: NDArray[np.float64]  # (K,) sum w r
+    sum_squared: NDArray[np.float64]  # (K,) sum w r^2
+    sum_absolute: NDArray[np.float64]  # (K,) sum w |r|
+    sum_percentage: NDArray[np.float64]  # (K,) sum w |r| / max(|y|, eps)
+    max_absolute: NDArray[np.float64]  # (K,) max |r| (over rows of positive weight)
+    median: NDArray[np.float64] | None  # (K,) median |r| (weighted: scikit-learn's rule)
+    median_low: NDArray[np.float64] | None  # (K,) order-statistic interval, per seed
+    median_high: NDArray[np.float64] | None
+    row_squared: NDArray[np.float64] | None  # (n,) sum over seeds of r^2 (unweighted)
+    row_absolute: NDArray[np.float64] | None  # (n,) sum over seeds of |r|
+    row_prediction: NDArray[np.float64] | None  # (n,) sum over seeds of the predictions
+
+
+def _fused_pass(
+    ts: _TargetStats,
+    predictions: NDArray[np.float64],
+    *,
+    median: bool = True,
+    median_interval_level: float | None = None,
+    row_squared: bool = False,
+    row_absolute: bool = False,
+    row_prediction: bool = False,
+) -> _PassResult:
+    """Every per-seed sum the metrics need, in one blocked sweep over each seed's residuals.
+
+    The residuals r = p - y of one seed are formed once, block by block, and every sum is
+    taken while the block is in cache; no (K, n) temporary is made. The median (and the
+    order statistics of its interval) come from ``_OrderStatistics``, fed block by block.
+    With weights, |r| of the seed is kept whole for scikit-learn's weighted median.
+    """
+    y, w = ts.y, ts.weights
+    n_seeds, n = predictions.shape
+    chunk = min(_CHUNK, n)
+    block = np.empty(chunk)
+    block_sq = np.empty(chunk)
+    sums = np.zeros((5, n_seeds))
+    rows_sq = np.empty(n) if row_squared else None
+    rows_abs = np.empty(n) if row_absolute else None
+    rows_pred = np.empty(n) if row_prediction else None
+
+    want_ci = median and median_interval_level is not None
+    med = np.empty(n_seeds) if median else None
+    med_low = np.full(n_seeds, np.nan) if want_ci else None
+    med_high = np.full(n_seeds, np.nan) if want_ci else None
+    selector = None
+    scratch = None
+    ci_ranks: tuple[int, int] | None = None
+    if median and w is None:
+        half = n // 2
+        median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
+        ci_ranks = (
+            order_statistic_ranks(n, 0.5, median_interval_level)
+            if median_interval_level is not None
+            else None
+        )
+        selector = _OrderStatistics(ts, median_ranks + (ci_ranks or ()))
+    elif median:
+        scratch = np.empty(n)
+
+    for k in range(n_seeds):
+        pk = predictions[k]
+        s_r = s_sq = s_abs = s_pct = 0.0
+        m_abs = 0.0 if w is not None else -np.inf
+        if selector is not None:
+            selector.start_seed(pk)
+        for start in range(0, n, chunk):
+            stop = min(start + chunk, n)
+            sl = slice(start, stop)
+            dest = block[: stop - start] if scratch is None else scratch[sl]
+            r = np.subtract(pk[sl], y[sl], out=dest)
+            sq = np.multiply(r, r, out=block_sq[: stop - start])
+            if w is None:
+                s_r += float(r.sum())
+                s_sq += float(sq.sum())
+            else:
+                s_r += float(np.einsum("i,i->", r, w[sl]))
+                s_sq += float(np.einsum("i,i->", sq, w[sl]))
+            if rows_sq is not None:
+                if k == 0:
+                    rows_sq[sl] = sq
+                else:
+                    rows_sq[sl] += sq
+            if rows_pred is not None:
+                if k == 0:
+                    rows_pred[sl] = pk[sl]
+                else:
+                    rows_pred[sl] += pk[sl]
+            a = np.abs(r, out=r)
+            if w is None:
+                s_abs += float(a.sum())
+                m_abs = max(m_abs, float(a.max()))
+            else:
+                s_abs += float(np.einsum("i,i->", a, w[sl]))
+                m_abs = max(m_abs, float(np.max(a, where=ts.positive[sl], initial=0.0)))
+            s_pct += float(np.einsum("i,i->", a, ts.weighted_inverse_scale[sl]))
+            if rows_abs is not None:
+                if k == 0:
+                    rows_abs[sl] = a
+                else:
+                    rows_abs[sl] += a
+            if selector is not None:
+                selector.add_block(a)
+        sums[:, k] = (s_r, s_sq, s_abs, s_pct, m_abs)
+        if med is None:
+            continue
+        if selector is not None:
+            found = selector.finish_seed()
+            half = n // 2
+            med[k] = found[half] if n % 2 else (found[half - 1] + found[half]) / 2
+            if ci_ranks is not None:
+                med_low[k], med_high[k] = found[ci_ranks[0]], found[ci_ranks[1]]
+        else:
+            assert scratch is not None and w is not None
+            med[k], lo, hi = _weighted_median(scratch, w, median_interval_level)
+            if want_ci:
+                med_low[k], med_high[k] = lo, hi
+    return _PassResult(
+        sum_residual=sums[0],
+        sum_squared=sums[1],
+        sum_absolute=sums[2],
+        sum_percentage=sums[3],
+        max_absolute=sums[4],
+        median=med,
+        median_low=med_low,
+        median_high=med_high,
+        row_squared=rows_sq,
+        row_absolute=rows_abs,
+        row_prediction=rows_pred,
+    )
+
+
+class _OrderStatistics:
+    """Exact order statistics of one seed's |r| at a few ranks near one quantile, blockwise.
+
+    Small n (below ``_BRACKET_MIN_ROWS``): the blocks are copied into one array and
+    ``select_order_statistics`` partitions it. Large n: a fixed random sample of rows
+    (``_SAMPLE_SIZE``, drawn once per call with a fixed seed, the same rows for every
+    seed) gives a bracket [lo, hi] that holds the wanted ranks with overwhelming
+    probability (``_BRACKET_Z`` binomial standard deviations of margin); each block then
+    only counts its values below lo and keeps those inside [lo, hi] (a few percent of the
+    rows), which are sorted at the end. The bracket is verified by the counts; should it
+    miss (probability about 1e-6), the seed's |r| is recomputed and partitioned exactly.
+    Either way the result is exact; only the time differs.
+    """
+
+    def __init__(self, ts: _TargetStats, ranks: tuple[int, ...]) -> None:
+        self.ts = ts
+        self.n = n = ts.y.size
+        self.ranks = tuple(sorted(set(ranks)))
+        self.bracket = n >= _BRACKET_MIN_ROWS
+        if self.bracket:
+            rng = np.random.default_rng(_SAMPLE_SEED)
+            self.rows = np.sort(rng.integers(0, n, _SAMPLE_SIZE))
+            self.y_sample = ts.y[self.rows]
+            margin = _BRACKET_Z * 0.5 * math.sqrt(_SAMPLE_SIZE)
+            self.j_lo = math.floor(self.ranks[0] / n * _SAMPLE_SIZE - margin)
+            self.j_hi = math.ceil((self.ranks[-1] + 1) / n * _SAMPLE_SIZE + margin)
+            self.below_mask = np.empty(min(_CHUNK, n), dtype=bool)
+            self.keep_mask = np.empty(min(_CHUNK, n), dtype=bool)
+        else:
+            self.values = np.empty(n)
+        self.pos = 0
+
+    def start_seed(self, prediction: NDArray[np.float64]) -> None:
+        self.prediction = prediction
+        self.pos = 0
+        if not self.bracket:
+            return
+        sample = np.subtract(prediction[self.rows], self.y_sample)
+        np.abs(sample, out=sample)
+        sample.sort()
+        self.lo = sample[self.j_lo] if self.j_lo >= 0 else -np.inf
+        self.hi = sample[self.j_hi] if self.j_hi < sample.size else np.inf
+        self.below = 0
+        self.kept: list[NDArray[np.float64]] = []
+
+    def add_block(self, a: NDArray[np.float64]) -> None:
+        m = a.size
+        if not self.bracket:
+            self.values[self.pos : self.pos + m] = a
+            self.pos += m
+            return
+        below = np.less(a, self.lo, out=self.below_mask[:m])
+        self.below += int(np.count_nonzero(below))
+        keep = np.less_equal(a, self.hi, out=self.keep_mask[:m])
+        np.not_equal(keep, below, out=keep)  # lo <= a <= hi (below implies <= hi)
+        self.kept.append(a[keep])
+
+    def finish_seed(self) -> dict[int, float]:
+        if not self.bracket:
+            return select_order_statistics(self.values, self.ranks)
+        kept = np.concatenate(self.kept)
+        self.kept = []
+        if self.below <= self.ranks[0] and self.below + kept.size > self.ranks[-1]:
+            kept.sort()
+            return {r: float(kept[r - self.below]) for r in self.ranks}
+        exact = np.abs(np.subtract(self.prediction, self.ts.y))
+        return select_order_statistics(exact, self.ranks)
+
+
+def _weighted_median(
+    values: NDArray[np.float64], w: NDArray[np.float64], level: float | None
+) -> tuple[float, float, float]:
+    """scikit-learn's weighted median, plus Woodruff's interval bounds when ``level`` is set.
+
+    A port of ``sklearn.utils.stats._weighted_percentile(values, w, 50, average=True)``
+    (the averaged inverted CDF: the mean of the two middle values when the cumulative weight
+    lands exactly on one half). The interval: weighted quantiles at 1/2 -/+
+    z * sqrt(1/4 / n_eff), n_eff Kish's effective n (Woodruff 1952, JASA 47).
+    """
+    n = values.size
+    order = np.argsort(values)  # the same (non-stable) sort scikit-learn uses
+    sorted_w = w[order]
+    cdf = np.cumsum(sorted_w)
+    target = 0.5 * cdf[-1]
+    idx = min(int(np.searchsorted(cdf, target)), n - 1)
+    value = float(values[order[idx]])
+    if cdf[idx] - target <= np.finfo(np.float64).eps:
+        nxt = min(idx + 1, n - 1)
+        if sorted_w[nxt] == 0:
+            nxt = int(np.searchsorted(cdf, cdf[idx], side="right"))
+            if nxt > n - 1:
+                nxt = idx
+        value = (value + float(values[order[nxt]])) / 2
+    if level is None:
+        return value, math.nan, math.nan
+    wsum = float(cdf[-1])
+    n_eff = wsum * wsum / float(np.dot(w, w))
+    half = z_value(level) * math.sqrt(0.25 / n_eff)
+    if half >= 0.5:
+        return value, math.nan, math.nan
+    bounds = []
+    for q in (0.5 - half, 0.5 + half):
+        j = min(int(np.searchsorted(cdf, q * wsum, side="left")), n - 1)
+        bounds.append(float(values[order[j]]))
+    return value, bounds[0], bounds[1]
+
+
+def _explained_variance_numerator(
+    ts: _TargetStats, prediction: NDArray[np.float64], sum_residual: float, sum_squared: float
+) -> float:
+    """Weighted variance of the residuals of one seed, as explained_variance_score's numerator."""
+    mean_r = sum_residual / ts.weight_sum
+    mean_sq = sum_squared / ts.weight_sum
+    if mean_r * mean_r < _EV_EXACT_SHARE * mean_sq:
+        return mean_sq - mean_r * mean_r
+    # scikit-learn's own two-pass formula, on y - p exactly as it computes it
+    diff = ts.y - prediction
+    diff_mean = np.average(diff, weights=ts.weights)
+    diff -= diff_mean
+    np.multiply(diff, diff, out=diff)
+    return float(np.average(diff, weights=ts.weights))
+
+
+def _fraction_explained(numerator: float, denominator: float) -> float:
+    """1 - numerator / denominator with scikit-learn's force_finite conventions."""
+    if numerator == 0.0:
+        return 1.0
+    if denominator == 0.0:
+        return 0.0
+    return 1.0 - numerator / denominator
+
+
+def _metrics_from_pass(
+    ts: _TargetStats, predictions: NDArray[np.float64], res: _PassResult
+) -> dict[str, NDArray[np.float64]]:
+    """Per-seed metric values (K,) from the sums of a fused pass."""
+    n_seeds, n = predictions.shape
+    mse = res.sum_squared / ts.weight_sum
+    r2 = np.empty(n_seeds)
+    ev = np.empty(n_seeds)
+    for k in range(n_seeds):
+        r2[k] = (
+            math.nan if n < 2 else _fraction_explained(res.sum_squared[k], ts.r2_denominator)
+        )
+        ev_num = _explained_variance_numerator(
+            ts, predictions[k], float(res.sum_residual[k]), float(res.sum_squared[k])
+        )
+        ev[k] = _fraction_explained(ev_num, ts.ev_denominator)
+    out = {
+        "mse": mse,
+        "rmse": np.sqrt(mse),
+        "mae": res.sum_absolute / ts.weight_sum,
+        "median_absolute_error": res.median,
+        "max_error": res.max_absolute.copy(),
+        "r2": r2,
+        "explained_variance": ev,
+        "mape": res.sum_percentage / ts.weight_sum,
+    }
+    return {name: out[name] for name in METRICS}
+
+
+# --------------------------------------------------------------------------------------
+# Public functions
+# --------------------------------------------------------------------------------------
+
+
+def regression_metrics(
+    y_true: ArrayLike, predictions: ArrayLike, *, sample_weight: ArrayLike | None = None
+) -> dict[str, NDArray[np.float64]]:
+    """Every regression metric for each seed, computed in one fused pass.
+
+    Parameters
+    ----------
+    y_true : array-like of shape (n,)
+        Held-out targets.
+    predictions : array-like of shape (K, n) or (n,)
+        One row of predictions per seed.
+    sample_weight : array-like of shape (n,), optional
+        Non-negative row weights.
+
+    Returns
+    -------
+    dict
+        ``METRICS`` keys, each an array of shape (K,) with the value per seed; each matches
+        the scikit-learn function of the module table on that seed (best values: 0 for the
+        errors, 1 for ``r2`` and ``explained_variance``).
+    """
+    y = as_targets(y_true)
+    p = as_seed_predictions(predictions, y.size)
+    w = as_weights(sample_weight, y.size)
+    ts = _target_stats(y, w)
+    with np.errstate(over="ignore", invalid="ignore"):
+        return _metrics_from_pass(ts, p, _fused_pass(ts, p))
+
+
+def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[np.float64]:
+    """Squared error of each row averaged over seeds: the expected per-row loss, shape (n,).
+
+    Its mean is the mean over seeds of the MSE; paired comparisons, overfitting flags and
+    storage work on these per-row values.
+    """
+    y = as_targets(y_true)
+    p = as_seed_predictions(predictions, y.size)
+    ts = _target_stats(y, None)
+    with np.errstate(over="ignore", invalid="ignore"):
+        res = _fused_pass(ts, p, median=False, row_squared=True)
+    rows = res.row_squared
+    assert rows is not None
+    return np.divide(rows, p.shape[0], out=rows)
+
+
+def ensemble_prediction(predictions: ArrayLike) -> NDArray[np.float64]:
+    """The seed-averaged prediction, shape (n,): the mean over seeds of (K, n) predictions.
+
+    Its MSE is the bias term of the squared-loss decomposition (lower than the mean MSE over
+    seeds by exactly the variance term).
+    """
+    p = np.asarray(predictions, dtype=np.float64)
+    p = as_seed_predictions(p, p.shape[-1] if p.ndim else -1)
+    return p.mean(axis=0)
+
+
+def _spread(values: NDArray[np.float64]) -> Spread:
+    sd = float(values.std(ddof=1)) if values.size > 1 else 0.0
+    return Spread(
+        mean=float(values.mean()), sd=sd, min=float(values.min()), max=float(values.max())
+    )
+
+
+def _headline(per_seed: dict[str, NDArray[np.float64]]) -> dict[str, float]:
+    scores = {name: float(values.mean()) for name, values in per_seed.items()}
+    scores["rmse"] = math.sqrt(scores["mse"])
+    return scores
+
+
+def regression_report(
+    y_true: ArrayLike,
+    predictions: ArrayLike,
+    *,
+    sample_weight: ArrayLike | None = None,
+    train_y_true: ArrayLike | None = None,
+    train_predictions: ArrayLike | None = None,
+    noise_variance: float | None = None,
+    options: ScoringOptions = ScoringOptions(),  # noqa: B008 (frozen, immutable)
+) -> Report:
+    """Everything the service says about a regression submission on the held-out rows.
+
+    Parameters
+    ----------
+    y_true : array-like of shape (n,)
+        Held-out targets.
+    predictions : array-like of shape (K, n) or (n,)
+        Predictions of K seeds (retrainings) on the held-out rows.
+    sample_weight : array-like of shape (n,), optional
+        Row weights of the held-out rows.
+    train_y_true, train_predictions : array-like of shapes (m,) and (K', m), optional
+        The same model's targets and predictions on its training rows (both or neither):
+        adds ``train_scores`` and the generalization-gap evidence in ``flags``.
+    noise_variance : float, optional
+        Known irreducible noise variance, reported apart from the bias term.
+    options : ScoringOptions
+        Interval level, bootstrap settings and flag thresholds.
+
+    Returns
+    -------
+    Report
+        ``scores``: the mean over seeds of each metric, except ``rmse`` = sqrt(``mse``);
+        ``seed_spread``: each metric's spread over seeds; ``ensemble``: the metrics of the
+        seed-averaged prediction; ``bias_variance["squared"]``: the squared-loss
+        decomposition (for K = 1 too, with variance 0); ``intervals``: one per headline
+        metric (see ``_intervals``); ``details``: ``mape_zero_targets``, per-seed values,
+        and notes on any convention that was applied.
+    """
+    return _regression_report(
+        y_true,
+        predictions,
+        sample_weight=sample_weight,
+        train_y_true=train_y_true,
+        train_predictions=train_predictions,
+        noise_variance=noise_variance,
+        options=options,
+        with_intervals=True,
+    )
+
+
+def _regression_report(
+    y_true: ArrayLike,
+    predictions: ArrayLike,
+    *,
+    sample_weight: ArrayLike | None,
+    train_y_true: ArrayLike | None,
+    train_predictions: ArrayLike | None,
+    noise_variance: float | None,
+    options: ScoringOptions,
+    with_intervals: bool,
+) -> Report:
+    """``regression_report`` with a switch to leave out the intervals (for the benchmark)."""
+    from .decomposition import squared_loss_decomposition
+    from .flags import overfitting_flags
+
+    y = as_targets(y_true)
+    n = y.size
+    p = as_seed_predictions(predictions, n)
+    w = as_weights(sample_weight, n)
+    if (train_y_true is None) != (train_predictions is None):
+        missing = "train_predictions" if train_predictions is None else "train_y_true"
+        raise ScoringInputError(missing, "train_y_true and train_predictions go together")
+    n_seeds = p.shape[0]
+    level = options.level
+    ts = _target_stats(y, w)
+
+    with np.errstate(over="ignore", invalid="ignore"):
+        res = _fused_pass(
+            ts,
+            p,
+            median_interval_level=level if with_intervals else None,
+            row_squared=True,
+            row_absolute=with_intervals,
+            row_prediction=True,
+        )
+        per_seed = _metrics_from_pass(ts, p, res)
+        assert res.row_prediction is not None and res.row_squared is not None
+        ensemble_pred = np.divide(res.row_prediction, n_seeds, out=res.row_prediction)
+        ens = ensemble_pred[np.newaxis, :]
+        ensemble = {
+            name: float(v[0])
+            for name, v in _metrics_from_pass(ts, ens, _fused_pass(ts, ens)).items()
+        }
+        row_losses = np.divide(res.row_squared, n_seeds, out=res.row_squared)
+
+        train_scores = None
+        train_row_losses = None
+        baseline_train_loss = None
+        baseline_centre = ts.mean
+        if train_y_true is not None:
+            ty = as_targets(train_y_true, name="train_y_true")
+            tp = as_seed_predictions(train_predictions, ty.size, name="train_predictions")
+            tts = _target_stats(ty, None)
+            tres = _fused_pass(tts, tp, row_squared=True)
+            train_scores = _headline(_metrics_from_pass(tts, tp, tres))
+            assert tres.row_squared is not None
+            train_row_losses = np.divide(tres.row_squared, tp.shape[0], out=tres.row_squared)
+            baseline_centre = tts.mean
+            baseline_train_loss = float(tts.centred_sq.mean())
+        if train_y_true is None:
+            baseline_test_loss = ts.ev_denominator  # weighted mean of (y - mean y)^2
+        else:
+            dev = y - baseline_centre
+            baseline_test_loss = float(np.average(dev * dev, weights=w))
+
+    scores = _headline(per_seed)
+    decomposition: Decomposition = squared_loss_decomposition(
+        y, p, sample_weight=w, noise_variance=noise_variance
+    )
+    flags = overfitting_flags(
+        loss="mse",
+        test_row_losses=row_losses,
+        train_row_losses=train_row_losses,
+        baseline_test_loss=baseline_test_loss,
+        baseline_train_loss=baseline_train_loss,
+        decomposition=decomposition,
+        seed_losses=per_seed["mse"],
+        sample_weight=w,
+        train_sample_weight=None,
+        thresholds=options.thresholds,
+    )
+
+    intervals: dict[str, Interval] = {}
+    if with_intervals:
+        with np.errstate(over="ignore", invalid="ignore"):
+            intervals = _intervals(ts, p, res, row_losses, level)
+
+    notes = []
+    if n < 2:
+        notes.append("r2 is undefined with a single row (NaN), as in scikit-learn")
+    if ts.r2_denominator == 0.0:
+        notes.append(
+            "constant targets: r2 and explained_variance are 1 for perfect predictions "
+            "and 0 otherwise (scikit-learn's force_finite convention)"
+        )
+    if ts.zero_targets:
+        notes.append(
+            f"{ts.zero_targets} zero target(s): mape divides their error by machine "
+            "epsilon (as scikit-learn), so it is huge unless those predictions are exact"
+        )
+    if w is not None:
+        notes.append("max_error is taken over rows of positive weight")
+    details = {
+        "mape_zero_targets": ts.zero_targets,
+        "per_seed": {name: values.tolist() for name, values in per_seed.items()},
+        "notes": notes,
+    }
+    return Report(
+        task="regression",
+        n_rows=n,
+        n_seeds=n_seeds,
+        scores=scores,
+        intervals=intervals,
+        seed_spread={name: _spread(values) for name, values in per_seed.items()},
+        ensemble=ensemble,
+        bias_variance={"squared": decomposition},
+        flags=flags,
+        train_scores=train_scores,
+        details=details,
+    )
+
+
+# --------------------------------------------------------------------------------------
+# Intervals
+# --------------------------------------------------------------------------------------
+
+
+def _intervals(
+    ts: _TargetStats,
+    predictions: NDArray[np.float64],
+    res: _PassResult,
+    row_losses: NDArray[np.float64],
+    level: float,
+) -> dict[str, Interval]:
+    """One interval per headline metric (each the mean over seeds of a per-seed metric).
+
+    - ``mse``, ``mae``, ``mape``: normal interval of the per-row losses averaged over seeds,
+      whose mean is exactly the mean over seeds of the metric (so the interval is for it);
+    - ``rmse``: the square root of the ``mse`` interval's endpoints (a monotone map);
+    - ``r2``: delta method for 1 - mean(a) / mean(b), a = per-row squared error averaged
+      over seeds, b = (y - mean y)^2; the mean over seeds of R^2 is exactly that, because
+      every seed shares the denominator;
+    - ``explained_variance``: the same with a_i = mean over seeds of (r_ki - mean_i r_ki)^2;
+    - ``median_absolute_error``: per seed, the distribution-free order-statistic interval
+      (binomial ranks; Woodruff's with weights), combined by ``seed_mean_interval``;
+    - ``max_error``: none (an extreme order statistic has no useful large-sample interval).
+    """
+    w = ts.weights
+    n_seeds, n = predictions.shape
+    out: dict[str, Interval] = {}
+    out["mse"] = normal_interval(row_losses, w, level)
+    out["rmse"] = monotone_interval(
+        out["mse"],
+        lambda v: math.sqrt(max(v, 0.0)),
+        note="square root of the mse interval's endpoints",
+    )
+    assert res.row_absolute is not None
+    row_abs = np.divide(res.row_absolute, n_seeds, out=res.row_absolute)
+    out["mae"] = normal_interval(row_abs, w, level)
+    if n < 2:
+        out["r2"] = no_interval(level, "r2 is undefined with a single row")
+    elif ts.r2_denominator == 0.0:
+        out["r2"] = no_interval(level, "constant targets: r2 is set by convention")
+    else:
+        ratio = delta_ratio_interval(row_losses, ts.centred_sq, w, level)
+        out["r2"] = monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
+    out["explained_variance"] = _explained_variance_interval(ts, predictions, res, level)
+    if res.median_low is not None and np.isfinite(res.median_low).all():
+        per_seed = [
+            Interval(float(lo), float(hi), level, "order_statistic")
+            for lo, hi in zip(res.median_low, res.median_high, strict=True)
+        ]
+        out["median_absolute_error"] = seed_mean_interval(per_seed, level)
+    else:
+        out["median_absolute_error"] = no_interval(
+            level, f"too few rows for a {level:g} order-statistic interval"
+        )
+    out["max_error"] = no_interval(
+        level, "the maximum is an extreme order statistic: no useful large-sample interval"
+    )
+    pct = np.multiply(row_abs, ts.inverse_scale, out=row_abs)
+    out["mape"] = normal_interval(pct, w, level)
+    return {name: out[name] for name in METRICS}
+
+
+def _explained_variance_interval(
+    ts: _TargetStats, predictions: NDArray[np.float64], res: _PassResult, level: float
+) -> Interval:
+    """Delta method for 1 - mean(a) / mean(b) with a_i = mean_k (r_ki - rbar_k)^2.
+
+    a_i = (mean_k r_ki^2) - (2 / K) sum_k rbar_k r_ki + mean_k rbar_k^2, and
+    sum_k rbar_k r_ki = sum_k rbar_k p_ki - y_i sum_k rbar_k: one weighted sum over seeds.
+    """
+    n_seeds, n = predictions.shape
+    if ts.ev_denominator == 0.0:
+        return no_interval(level, "constant targets: explained_variance is set by convention")
+    if n < 2:
+        return no_interval(level, "needs at least two rows")
+    assert res.row_squared is not None
+    rbar = res.sum_residual / ts.weight_sum
+    total = float(rbar.sum())
+    constant = float(np.mean(rbar * rbar))
+    scale = -2.0 / n_seeds
+    a = np.empty(n)
+    tmp = np.empty(min(_CHUNK, n))
+    for start in range(0, n, _CHUNK):
+        stop = min(start + _CHUNK, n)
+        sl = slice(start, stop)
+        t = tmp[: stop - start]
+        c = np.multiply(predictions[0, sl], rbar[0], out=a[sl])
+        for k in range(1, n_seeds):
+            c += np.multiply(predictions[k, sl], rbar[k], out=t)
+        c -= np.multiply(ts.y[sl], total, out=t)
+        c *= scale
+        c += res.row_squared[sl]  # the per-row losses averaged over seeds
+        c += constant
+    ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
+    return monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
+
+
+__all__ = [
+    "MAPE_EPSILON",
+    "METRICS",
+    "ensemble_prediction",
+    "regression_metrics",
+    "regression_report",
+    "regression_row_losses",
+]
