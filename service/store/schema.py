@@ -1,0 +1,95 @@
+"""Every table of the service, in one ``MetaData``.
+
+Secrets and sealed values live in tables of their own (``holdout_data``, ``submission_data``)
+so that every query for metadata reads only metadata; only ``Store`` methods whose names say
+so ever select from them. Uniqueness is the database's job: a token hash, a holdout name per
+owner. Timestamps are timezone-aware UTC.
+"""
+
+from __future__ import annotations
+
+from sqlalchemy import (
+    Column,
+    DateTime,
+    Float,
+    ForeignKey,
+    Index,
+    Integer,
+    LargeBinary,
+    MetaData,
+    String,
+    Table,
+    Text,
+    UniqueConstraint,
+)
+
+metadata = MetaData()
+
+tokens = Table(
+    "tokens",
+    metadata,
+    Column("id", String(32), primary_key=True),
+    # SHA-256 of the whole token text, hex; the token itself is never stored.
+    Column("token_hash", String(64), nullable=False, unique=True),
+    Column("role", String(16), nullable=False),
+    Column("group_name", String(64), nullable=True),
+    Column("label", String(200), nullable=True),
+    Column("created_at", DateTime(timezone=True), nullable=False),
+    Column("revoked_at", DateTime(timezone=True), nullable=True),
+)
+
+holdouts = Table(
+    "holdouts",
+    metadata,
+    Column("id", String(32), primary_key=True),
+    # Owner identity: "group:<name>" for a token with a group, else "token:<token id>".
+    Column("owner", String(100), nullable=False),
+    Column("name", String(200), nullable=False),
+    Column("task", String(16), nullable=False),
+    Column("n_rows", Integer, nullable=False),
+    Column("classes", Text, nullable=True),  # JSON list of class names, in index order
+    Column("policy", Text, nullable=False),  # JSON object, normalized (defaults filled in)
+    Column("fingerprint", String(64), nullable=False),
+    Column("created_by", String(32), nullable=False),  # token id
+    Column("created_at", DateTime(timezone=True), nullable=False),
+    UniqueConstraint("owner", "name", name="uq_holdouts_owner_name"),
+)
+
+holdout_data = Table(
+    "holdout_data",
+    metadata,
+    Column("holdout_id", String(32), ForeignKey("holdouts.id"), primary_key=True),
+    Column("salt", LargeBinary(32), nullable=False),  # secret until a later reveal
+    Column("ids", LargeBinary, nullable=False),  # compressed array, registration order
+    Column("labels", LargeBinary, nullable=False),  # float64 targets or int32 class indices
+)
+
+submissions = Table(
+    "submissions",
+    metadata,
+    Column("id", String(32), primary_key=True),
+    Column("holdout_id", String(32), ForeignKey("holdouts.id"), nullable=False),
+    Column("group_name", String(64), nullable=False),
+    Column("token_id", String(32), nullable=False),
+    Column("model", String(200), nullable=False),
+    Column("n_seeds", Integer, nullable=False),
+    Column("seeds", Text, nullable=False),  # JSON list of seed labels
+    Column("sweep_name", String(200), nullable=True),
+    Column("sweep_complexity", Float, nullable=True),
+    Column("primary_metric", String(64), nullable=False),
+    Column("primary_value", Float, nullable=True),  # NULL when the metric is undefined
+    Column("report", Text, nullable=False),  # JSON of the scoring core's Report
+    Column("created_at", DateTime(timezone=True), nullable=False),
+    Index("ix_submissions_holdout_group", "holdout_id", "group_name", "created_at"),
+)
+
+submission_data = Table(
+    "submission_data",
+    metadata,
+    Column("submission_id", String(32), ForeignKey("submissions.id"), primary_key=True),
+    Column("row_loss", String(32), nullable=False),  # which per-row loss: squared, log, ...
+    # Per-row losses of the primary loss in holdout row order, averaged over seeds; compressed.
+    Column("row_losses", LargeBinary, nullable=False),
+)
+
+__all__ = ["holdout_data", "holdouts", "metadata", "submission_data", "submissions", "tokens"]
