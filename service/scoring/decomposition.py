@@ -12,10 +12,11 @@ the loss of their combined "main" prediction) and what they disagree on (varianc
 - the Brier score's partition into reliability, resolution and uncertainty (Murphy 1973,
   Journal of Applied Meteorology 12): ``brier_partition``.
 
-Every function takes ``(y_true, predictions, *, sample_weight=None)`` in that order and
-averages over rows with the (optional) weights. Rows are processed in blocks of a few
-thousand so that every seed's slice of a block stays in cache: one read of the (K, n)
-input from memory, no (K, n) temporaries, and a Python loop over blocks, never over rows.
+Every function takes ``y_true`` then the seeds' predictions, then keyword options ending in
+``sample_weight=None``, and averages over rows with the (optional) weights. Rows are
+processed in blocks of a few thousand so that every seed's slice of a block stays in cache:
+the computation reads the (K, n) input from memory once (the shared input checks read it
+once more), allocates no (K, n) temporaries, and loops in Python over blocks, never rows.
 """
 
 from __future__ import annotations
@@ -390,7 +391,10 @@ def log_loss_decomposition(
         ``Z[i] = sum_c exp(g[i, c])`` and ``q = exp(g) / Z``:
         ``expected_loss`` = mean over seeds of the log loss; ``bias`` = log loss of ``q``;
         ``variance`` = mean over rows of ``-log Z[i]`` = mean over seeds of
-        ``KL(q || p_k)``; ``expected_loss = bias + variance`` exactly.
+        ``KL(q || p_k)``; ``expected_loss = bias + variance`` exactly (in floats, to
+        rounding: each term is computed on its own, ``bias`` per row without cancellation,
+        so a small bias under a large variance keeps its digits). ``q`` is not clipped
+        again: it is positive by construction.
         ``ensemble_loss`` is the log loss of the arithmetic mean of the (unclipped)
         probabilities, the ensemble a user would deploy; it differs from ``bias``, the loss
         of the geometric-mean prediction.
@@ -410,7 +414,8 @@ def log_loss_decomposition(
     rows = np.arange(min(block, n), dtype=np.intp)
     log_buf = np.empty((n_seeds, rows.size, n_cls))
     mean_log_buf = np.empty((rows.size, n_cls))
-    per_row = np.empty((3, n))  # -mean_k log p_k[y], -log Z, -log mean_k p_k[y]
+    # per row: -mean_k log p_k[y], -log Z, -log mean_k p_k[y], -log q[y]
+    per_row = np.empty((4, n))
     for start in range(0, n, block):
         stop = min(start + block, n)
         size = stop - start
@@ -424,22 +429,26 @@ def log_loss_decomposition(
         mean_log /= n_seeds
         np.negative(mean_log[r, yb], out=per_row[0, start:stop])
         np.exp(mean_log, out=mean_log)
-        z = np.add.reduce(mean_log, axis=1, out=per_row[1, start:stop])
+        z = np.add.reduce(mean_log, axis=1)
+        mean_log[r, yb] = 0.0
+        rest = np.add.reduce(mean_log, axis=1)
+        rest /= z  # 1 - q[y], summed over the other classes
         np.log(z, out=z)
-        np.negative(z, out=z)
+        np.negative(z, out=per_row[1, start:stop])
+        # -log q[y] = log Z - g[y], or -log1p(-(1 - q[y])) where q[y] > 1/2: either way no
+        # cancellation (the first loses digits when q[y] is near 1, the second near 0)
+        bias_row = per_row[3, start:stop]
+        np.add(z, per_row[0, start:stop], out=bias_row)
+        near_one = rest < 0.5
+        bias_row[near_one] = -np.log1p(-rest[near_one])
         mean_true = np.add.reduce(values[:, r, yb], axis=0, out=per_row[2, start:stop])
         mean_true /= n_seeds
         np.clip(mean_true, _EPS, 1.0 - _EPS, out=mean_true)
         np.log(mean_true, out=mean_true)
         np.negative(mean_true, out=mean_true)
 
-    if w is None:
-        expected_loss, variance, ensemble_loss = (float(v) for v in per_row.mean(axis=1))
-    else:
-        total = per_row @ w / float(w.sum())
-        expected_loss, variance, ensemble_loss = (float(v) for v in total)
-    # log q[y] = g[y] - log Z, so the loss of q is the expected loss less the variance term
-    bias = expected_loss - variance
+    totals = per_row.mean(axis=1) if w is None else per_row @ w / float(w.sum())
+    expected_loss, variance, ensemble_loss, bias = (float(v) for v in totals)
     return Decomposition(
         loss="log",
         expected_loss=expected_loss,

@@ -7,6 +7,7 @@ paper's definition written out directly; each check names its source.
 
 from __future__ import annotations
 
+import decimal
 import functools
 import math
 from fractions import Fraction
@@ -340,6 +341,39 @@ def test_log_loss_exact_zeros_are_clipped_like_sklearn() -> None:
     single = log_loss_decomposition(y, probs[0])
     assert single.expected_loss == approx(log_loss(y, probs[0], labels=np.arange(3)), rel=TIGHT)
     assert single.ensemble_loss == approx(single.expected_loss, rel=TIGHT)
+
+
+def test_log_loss_terms_to_full_precision_against_decimal_arithmetic() -> None:
+    # Row 0: the seeds put their doubt on different wrong classes, so the geometric mean is
+    # nearly certain of the truth (bias ~3e-7) while the variance is ~0.69: bias taken as
+    # expected - variance would keep only ~6 digits. Row 1: the truth gets q ~ 1e-7.
+    delta = 1e-14
+    y = np.array([0, 1])
+    probs = np.array(
+        [
+            [[0.5, 0.5 - delta, delta], [0.9, 1e-7, 0.1 - 1e-7]],
+            [[0.5, delta, 0.5 - delta], [0.2, 1e-7, 0.8 - 1e-7]],
+        ]
+    )
+    # reference: Python's decimal module at 50 digits (correctly rounded ln and exp), on
+    # the exact binary values of the inputs; Heskes (1998) definitions written out
+    with decimal.localcontext() as ctx:
+        ctx.prec = 50
+        terms = {"expected": [], "bias": [], "variance": []}
+        for i, t in enumerate(y):
+            logs = [[decimal.Decimal(float(v)).ln() for v in probs[k, i]] for k in range(2)]
+            g = [(logs[0][c] + logs[1][c]) / 2 for c in range(3)]
+            z = sum(gc.exp() for gc in g)
+            terms["expected"].append(-g[t])
+            terms["variance"].append(-z.ln())
+            terms["bias"].append(-(g[t].exp() / z).ln())
+        ref = {name: float(sum(v) / 2) for name, v in terms.items()}
+    d = log_loss_decomposition(y, probs)
+    assert d.expected_loss == approx(ref["expected"], rel=1e-14)
+    assert d.variance == approx(ref["variance"], rel=1e-14)
+    assert d.bias == approx(ref["bias"], rel=1e-14)
+    single = log_loss_decomposition(y[:1], probs[:, :1])
+    assert single.bias == approx(float(terms["bias"][0]), rel=1e-12)
 
 
 def test_log_loss_certain_probabilities_are_clipped_below_one_like_sklearn() -> None:
