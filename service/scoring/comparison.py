@@ -30,6 +30,7 @@ from scipy import stats
 from ._checks import ScoringInputError, as_targets, as_weights
 from .intervals import (
     bca_interval,
+    mean_sd_effective_n,
     no_interval,
     percentile_interval,
     wilson_interval,
@@ -52,31 +53,6 @@ group size, so the estimate stays consistent at O(n) rather than O(n^2) cost).""
 
 _INDEX_BUDGET = 1 << 22
 """Bootstrap indices drawn per chunk (32 MiB of int64), to bound memory for large n."""
-
-
-def _moments(
-    values: NDArray[np.float64], weights: NDArray[np.float64] | None
-) -> tuple[float, float, float]:
-    """Return (mean, sd, n_effective) of per-row values.
-
-    sd has ddof=1. With weights, the mean is weighted and n_effective is Kish's
-    ``(sum w)^2 / sum w^2``; the variance is the weighted one scaled by
-    ``n_eff / (n_eff - 1)``, as in ``intervals.normal_interval``. This equals statsmodels'
-    ``DescrStatsW`` with the weights rescaled to sum to n_effective.
-    sd is NaN when n_effective < 2.
-    """
-    if weights is None:
-        n = float(values.size)
-        mean = float(values.mean())
-        sd = float(values.std(ddof=1)) if values.size >= 2 else math.nan
-        return mean, sd, n
-    wsum = float(weights.sum())
-    mean = float(np.dot(weights, values) / wsum)
-    n_eff = wsum * wsum / float(np.dot(weights, weights))
-    if n_eff < 2.0:
-        return mean, math.nan, n_eff
-    var = float(np.dot(weights, (values - mean) ** 2) / wsum) * n_eff / (n_eff - 1.0)
-    return mean, math.sqrt(var), n_eff
 
 
 def _t_p_value(estimate: float, se: float, df: float) -> tuple[float, float]:
@@ -111,7 +87,8 @@ def paired_loss_test(
     the matching t interval ``mean +/- t_{n-1} * se``.
 
     With ``sample_weight`` the mean is weighted and n is replaced by Kish's effective sample
-    size (see ``_moments``), in line with the intervals of single metrics.
+    size (``intervals.mean_sd_effective_n``), in line with the intervals of single metrics;
+    this equals statsmodels' ``DescrStatsW`` with the weights rescaled to sum to that size.
 
     Parameters
     ----------
@@ -140,7 +117,7 @@ def paired_loss_test(
         )
     w = as_weights(sample_weight, a.size)
     d = a - b
-    mean, sd, n_eff = _moments(d, w)
+    mean, sd, n_eff = mean_sd_effective_n(d, w)
     mean_a = float(np.average(a, weights=w))
     mean_b = float(np.average(b, weights=w))
     details = {"mean_a": mean_a, "mean_b": mean_b, "n_effective": n_eff}

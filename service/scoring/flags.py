@@ -35,7 +35,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy import stats
 
 from ._checks import ScoringInputError, as_targets, as_weights
-from .comparison import _moments
+from .intervals import mean_sd_effective_n
 from .options import FlagThresholds
 from .results import Decomposition, Flag
 
@@ -65,12 +65,13 @@ def welch_greater(
 
     Unweighted, it is ``scipy.stats.ttest_ind(test, train, equal_var=False,
     alternative="greater")``. Weighted, each side uses its weighted mean and Kish's
-    effective sample size (``comparison._moments``), with the Welch-Satterthwaite degrees of
-    freedom. Returns None when a side has fewer than two (effective) rows. When both sides
-    have zero spread the p-value is 0 for a positive gap and 1 otherwise (the t test's limits).
+    effective sample size (``intervals.mean_sd_effective_n``), with the Welch-Satterthwaite
+    degrees of freedom. Returns None when a side has fewer than two (effective) rows. When
+    both sides have zero spread the p-value is 0 for a positive gap and 1 otherwise (the t
+    test's limits).
     """
-    mean_t, sd_t, n_t = _moments(test_losses, test_weight)
-    mean_r, sd_r, n_r = _moments(train_losses, train_weight)
+    mean_t, sd_t, n_t = mean_sd_effective_n(test_losses, test_weight)
+    mean_r, sd_r, n_r = mean_sd_effective_n(train_losses, train_weight)
     if not (math.isfinite(sd_t) and math.isfinite(sd_r)):
         return None
     v_t = sd_t * sd_t / n_t

@@ -32,6 +32,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from ._checks import ScoringInputError, as_seed_predictions, as_targets
+from .decomposition import squared_loss_decomposition
 from .results import SweepPoint, SweepResult
 
 
@@ -130,9 +131,7 @@ def _squared_point(
     p = as_seed_predictions(predictions, y.size)
     errors = p - y
     row_losses = np.mean(errors * errors, axis=0)
-    pbar = p.mean(axis=0)
-    bias = float(np.mean((pbar - y) ** 2))
-    variance = float(np.mean(p.var(axis=0)))
+    decomposition = squared_loss_decomposition(y, p)
     train_loss = None
     if (train_y is None) != (train_predictions is None):
         raise ScoringInputError(
@@ -144,7 +143,9 @@ def _squared_point(
         ty = as_targets(train_y, name="train_y")
         tp = as_seed_predictions(train_predictions, ty.size, name="train_predictions")
         train_loss = float(np.mean((tp - ty) ** 2))
-    return SweepInput(float(complexity), row_losses, bias, variance, train_loss)
+    return SweepInput(
+        float(complexity), row_losses, decomposition.bias, decomposition.variance, train_loss
+    )
 
 
 def sweep_from_predictions(
@@ -168,7 +169,7 @@ def sweep_from_predictions(
     SweepResult
         As ``complexity_sweep``; at each point the row loss is the squared error averaged
         over seeds, ``bias`` = mean (pbar - y)^2 (noise included) and ``variance`` = mean
-        over rows of the variance over seeds (ddof=0), as in
+        over rows of the variance over seeds (ddof=0), from
         ``decomposition.squared_loss_decomposition``; ``train_loss`` = mean squared error
         over seeds and training rows.
     """
