@@ -1,0 +1,307 @@
+"""Put a submission's rows in the holdout's order, exactly, in time linear in the rows.
+
+Fast path (text arrays of fixed width, what ``id_array`` and the table readers return):
+
+1. view each id as a row of UTF-32 code units and hash the rows to 64-bit integers
+   (a random linear combination of the code units, then a bijective 64-bit mixer);
+2. keep the hash's high bits and the row index in the low bits of one uint64 key and sort
+   the keys of each side (``np.sort`` of uint64 is SIMD-accelerated, unlike argsort);
+3. equal multisets of ids give equal sequences of hash prefixes: pair rows position by
+   position to get a candidate order;
+4. verify the candidate exactly, code unit by code unit. Rows whose hashes collide may be
+   paired wrongly; they fail the check and are re-paired by exact string lookup. Nothing
+   is ever accepted on a hash alone.
+
+Exact path (anything else, and every input with missing, unknown or duplicate ids): Arrow's
+hash table (``pyarrow.compute.index_in``), which compares the strings themselves; it also
+finds everything an error message needs.
+"""
+
+from __future__ import annotations
+
+import functools
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+from numpy.typing import NDArray
+
+from .errors import MAX_EXAMPLES, IngestError, content_error, show_text
+
+_HASH_SEED = 0x1D5_EED_2026
+_MIX = np.uint64(0xFF51AFD7ED558CCD)  # MurmurHash3 fmix64 constant (a bijection on uint64)
+_SHIFT = np.uint64(33)
+_CHUNK_ROWS = 1 << 16
+_REPAIR_LIMIT = 100_000
+_UNICODE_ALWAYS_BYTES = 64 * 1024 * 1024
+
+
+@functools.lru_cache(maxsize=64)
+def _multipliers(width: int) -> NDArray[np.uint64]:
+    rng = np.random.default_rng(_HASH_SEED)
+    r = rng.integers(0, np.iinfo(np.uint64).max, size=width, dtype=np.uint64, endpoint=True)
+    r |= np.uint64(1)
+    r.flags.writeable = False
+    return r
+
+
+def _code_units(u: NDArray[np.str_]) -> NDArray[np.uint32] | NDArray[np.uint64]:
+    """A native-order, contiguous ``<U{L}`` array as an integer matrix, one row per id.
+
+    (n, L/2) uint64 words of two UTF-32 code units when L is even (``id_array`` makes it
+    so: half as many columns to hash and compare), else (n, L) uint32 code units.
+    """
+    if u.dtype.itemsize % 8 == 0:
+        return u.view(np.uint64).reshape(u.size, u.dtype.itemsize // 8)
+    return u.view(np.uint32).reshape(u.size, u.dtype.itemsize // 4)
+
+
+def _row_hash(units: NDArray[np.uint32] | NDArray[np.uint64]) -> NDArray[np.uint64]:
+    """64-bit hash per row: a random linear combination of the row's words, then fmix64.
+
+    Zero padding adds nothing, so the hash does not depend on the array's width (given the
+    same word size). Collisions are possible and harmless: every pairing is verified.
+    """
+    h = np.einsum("ij,j->i", units, _multipliers(units.shape[1]))
+    h ^= h >> _SHIFT
+    h *= _MIX
+    h ^= h >> _SHIFT
+    return h
+
+
+def _as_unicode(ids: NDArray[Any]) -> NDArray[np.str_] | None:
+    """Native fixed-width text for the fast path, or None when only the exact path fits."""
+    if ids.dtype.kind == "U":
+        if ids.dtype.itemsize == 0:
+            return None
+        u = ids.astype(ids.dtype.newbyteorder("="), copy=False)
+        return np.ascontiguousarray(u)
+    if ids.dtype.kind not in ("O", "T") or ids.size == 0:
+        return None
+    values = ids.tolist()
+    if not all(isinstance(v, str) for v in values):
+        return None
+    lengths = np.fromiter(map(len, values), dtype=np.intp, count=len(values))
+    width = max(1, int(lengths.max()))
+    object_bytes = len(values) * (64 + float(lengths.mean()))
+    if 4 * width * len(values) > max(_UNICODE_ALWAYS_BYTES, 2 * object_bytes):
+        return None
+    if any("\x00" in v for v in values):  # numpy text drops trailing NUL: keep such ids exact
+        return None
+    return np.asarray(values, dtype=f"<U{width + width % 2}")
+
+
+def _same_rows(hu: NDArray[Any], su: NDArray[Any], order: NDArray[np.intp],
+               rows: NDArray[np.intp] | None = None) -> NDArray[np.intp]:
+    """Holdout positions j where the submitted id at order[j] differs from holdout id j."""
+    if rows is not None:
+        eq = (np.take(su, order[rows], axis=0) == hu[rows]).all(axis=1)
+        return rows[~eq]
+    bad: list[NDArray[np.intp]] = []
+    n = hu.shape[0]
+    for start in range(0, n, _CHUNK_ROWS):  # chunks stay in cache; ~16 chunks per million
+        stop = min(n, start + _CHUNK_ROWS)
+        got = np.take(su, order[start:stop], axis=0)
+        want = hu[start:stop]
+        if not np.array_equal(got, want):
+            bad.append(start + np.flatnonzero((got != want).any(axis=1)))
+    return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)
+
+
+def _fast_order(h: NDArray[np.str_], s: NDArray[np.str_]) -> NDArray[np.intp] | None:
+    """The order for a clean submission, or None when the exact path must decide."""
+    n = h.size
+    if s.size != n or n == 0:
+        return None
+    if h.dtype.itemsize != s.dtype.itemsize:  # hashing and checking need rows of equal width
+        width = max(h.dtype.itemsize, s.dtype.itemsize) // 4
+        width += width % 2
+        h = h.astype(f"<U{width}")
+        s = s.astype(f"<U{width}")
+    hu = _code_units(h)
+    su = _code_units(s)
+    head = min(n, 64)
+    if np.array_equal(hu[:head], su[:head]) and np.array_equal(hu, su):
+        return np.arange(n, dtype=np.intp)  # already in holdout order (a common case)
+    bits = max(1, (n - 1).bit_length())
+    low = np.uint64((1 << bits) - 1)
+    high = ~low
+    index = np.arange(n, dtype=np.uint64)
+    kh = np.sort((_row_hash(hu) & high) | index)
+    ks = np.sort((_row_hash(su) & high) | index)
+    ph = kh & high
+    if not np.array_equal(ph, ks & high):
+        return None
+    hpos = (kh & low).view(np.int64).astype(np.intp, copy=False)
+    order = np.empty(n, dtype=np.intp)
+    order[hpos] = (ks & low).view(np.int64)
+    # Holdout ids must be unique: equal ids have equal hashes, so only tied prefixes can hide
+    # duplicates; check those few exactly.
+    tied = np.flatnonzero(ph[1:] == ph[:-1])
+    if tied.size:
+        group = np.unique(np.concatenate([hpos[tied], hpos[tied + 1]]))
+        if len(set(h[group].tolist())) < group.size:
+            raise ValueError("holdout ids are not unique")
+    bad = _same_rows(hu, su, order)
+    if bad.size == 0:
+        return order
+    if bad.size > _REPAIR_LIMIT:
+        return None
+    # Re-pair the rows a hash collision mixed up, by exact lookup among the same rows.
+    candidates = order[bad]
+    lookup: dict[str, int] = {}
+    for i, text in zip(candidates.tolist(), s[candidates].tolist(), strict=True):
+        if text in lookup:
+            return None
+        lookup[text] = i
+    for j, text in zip(bad.tolist(), h[bad].tolist(), strict=True):
+        i = lookup.get(text)
+        if i is None:
+            return None
+        order[j] = i
+    if _same_rows(hu, su, order, bad).size:
+        return None
+    return order
+
+
+def _arrow_text(ids: NDArray[Any], name: str) -> pa.Array:
+    try:
+        if ids.dtype.kind == "U":
+            return pa.array(ids, type=pa.string())
+        return pa.array(ids.tolist(), type=pa.string())
+    except (pa.ArrowException, TypeError, ValueError, UnicodeEncodeError) as exc:
+        raise TypeError(f"{name} must hold text ids (use id_array): {exc}") from None
+
+
+def _distinct_examples(values: list[str], limit: int = MAX_EXAMPLES) -> list[str]:
+    seen: dict[str, None] = {}
+    for v in values:
+        seen.setdefault(v, None)
+        if len(seen) >= limit:
+            break
+    return list(seen)
+
+
+def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.intp]:
+    ha = _arrow_text(h, "holdout_ids")
+    sa = _arrow_text(s, "submitted_ids")
+    n_h, n_s = len(ha), len(sa)
+    first = pc.index_in(ha, value_set=ha).to_numpy(zero_copy_only=False)
+    if not np.array_equal(first, np.arange(n_h)):
+        raise ValueError("holdout ids are not unique")
+    idx = pc.fill_null(pc.index_in(sa, value_set=ha), -1).to_numpy(zero_copy_only=False)
+    idx = idx.astype(np.intp)
+    known = idx >= 0
+    counts = np.bincount(idx[known], minlength=n_h)
+    problems: list[IngestError] = []
+    if not known.all():
+        pos = np.flatnonzero(~known)
+        sample = sa.take(pa.array(pos[: 50 * MAX_EXAMPLES])).to_pylist()
+        problems.append(content_error(
+            field, int(pos.size), "submitted ids are not in the holdout",
+            [show_text(v) for v in _distinct_examples(sample)],
+            hint="every row's id must be one of the holdout's ids",
+        ))
+    dup_ids = np.flatnonzero(counts > 1)
+    if dup_ids.size:
+        in_dup = np.zeros(n_h, dtype=bool)
+        in_dup[dup_ids] = True
+        pos = np.flatnonzero(known & in_dup[np.where(known, idx, 0)])
+        sample_pos = pos[: 50 * MAX_EXAMPLES]
+        texts = sa.take(pa.array(sample_pos)).to_pylist()
+        times = {t: int(counts[idx[p]]) for t, p in zip(texts, sample_pos.tolist(), strict=True)}
+        problems.append(content_error(
+            field, int(dup_ids.size),
+            f"ids appear more than once ({int(counts[dup_ids].sum())} rows in all)",
+            [f"{show_text(t)} ({times[t]} times)" for t in _distinct_examples(texts)],
+            hint="send exactly one row per id",
+        ))
+    missing = np.flatnonzero(counts == 0)
+    if missing.size:
+        # Holdout ids are public (anyone allowed to submit can list them); labels never appear.
+        problems.append(content_error(
+            field, int(missing.size), "holdout ids have no row in the submission",
+            [show_text(v) for v in ha.take(pa.array(missing[:MAX_EXAMPLES])).to_pylist()],
+            hint="send exactly one row for every holdout id",
+        ))
+    if problems:
+        first_problem = problems[0]
+        raise IngestError(
+            first_problem.status, first_problem.field, first_problem.message,
+            count=first_problem.count, examples=first_problem.examples, more=problems[1:],
+        )
+    order = np.empty(n_h, dtype=np.intp)
+    order[idx] = np.arange(n_s, dtype=np.intp)
+    if not pc.all(pc.equal(sa.take(pa.array(order)), ha)).as_py():
+        raise AssertionError("exact alignment failed its own check")  # cannot happen
+    return order
+
+
+def _as_1d(ids: Any, name: str) -> NDArray[Any]:
+    if isinstance(ids, (pa.Array, pa.ChunkedArray)):
+        ids = ids.to_numpy(zero_copy_only=False)
+    arr = np.asarray(ids) if not isinstance(ids, np.ndarray) else ids
+    if arr.ndim != 1:
+        raise ValueError(f"{name} must be one-dimensional, got shape {arr.shape}")
+    return arr
+
+
+def align_ids(
+    holdout_ids: NDArray[Any], submitted_ids: NDArray[Any], *, field: str = "ids"
+) -> NDArray[np.intp]:
+    """Row order that puts a submission in holdout order: ``submitted_ids[order] == holdout_ids``.
+
+    Parameters
+    ----------
+    holdout_ids : array of str, shape (n,)
+        The holdout's ids, unique (a ValueError otherwise: that is our bug, not the user's).
+    submitted_ids : array of str, shape (m,)
+        The submission's ids as sent (``id_array`` or a table reader's ``ids``).
+    field : str
+        Name of the submitted field, for messages.
+
+    Returns
+    -------
+    order : ndarray of intp, shape (n,)
+        ``predictions[:, order]`` are the predictions in holdout order.
+
+    Raises
+    ------
+    IngestError (422)
+        For unknown, duplicate and missing ids, all reported together: examples of unknown
+        and duplicate ids come from the submission; missing ones are holdout ids, which are
+        public. Ids match exactly (no Unicode normalization, no trimming).
+    """
+    h = _as_1d(holdout_ids, "holdout_ids")
+    s = _as_1d(submitted_ids, "submitted_ids")
+    hu = _as_unicode(h)
+    su = _as_unicode(s) if hu is not None else None
+    order = _fast_order(hu, su) if hu is not None and su is not None else None
+    if order is None:
+        order = _exact_order(h, s, field)
+    return order
+
+
+def require_unique_ids(ids: NDArray[Any], *, field: str = "ids") -> None:
+    """422 naming repeated ids (for a holdout built from JSON; tables check this themselves)."""
+    arr = _as_1d(ids, field)
+    u = _as_unicode(arr)
+    if u is not None and u.size:
+        n = u.size
+        bits = max(1, (n - 1).bit_length())
+        high = ~np.uint64((1 << bits) - 1)
+        prefixes = np.sort(_row_hash(_code_units(u)) & high)
+        if not (prefixes[1:] == prefixes[:-1]).any():
+            return  # distinct hashes, so distinct ids
+    a = _arrow_text(arr, field)
+    first = pc.index_in(a, value_set=a).to_numpy(zero_copy_only=False)
+    repeated = np.flatnonzero(first != np.arange(len(a)))
+    if repeated.size == 0:
+        return
+    texts = a.take(pa.array(repeated[: 50 * MAX_EXAMPLES])).to_pylist()
+    distinct = int(np.unique(first[repeated]).size)
+    raise content_error(
+        field, distinct, f"ids appear more than once ({distinct + int(repeated.size)} rows in all)",
+        [show_text(t) for t in _distinct_examples(texts)], hint="every id must be unique",
+    )
