@@ -243,6 +243,35 @@ def _as_label_inputs(
     return y, lab
 
 
+def _main_prediction(
+    labels: NDArray[np.intp], y: NDArray[np.intp], n_classes: int
+) -> tuple[NDArray[np.intp], NDArray[np.intp], NDArray[np.intp]]:
+    """Per row of a (K, m) block: most frequent label (smallest on ties), its count, and
+    the count of seeds predicting ``y``.
+
+    With few classes (C <= K), one ``np.bincount`` of (class, row) pairs; with many, a
+    sort of each row's K labels and a count of the runs, so memory is O(K m), not O(C m).
+    """
+    n_seeds, m = labels.shape
+    rows = np.arange(m, dtype=np.intp)
+    if n_classes <= n_seeds:
+        # counts laid out (C, m): the count of class c on row j sits at c * m + j
+        counts = np.bincount((labels * m + rows).reshape(-1), minlength=n_classes * m)
+        by_class = counts.reshape(n_classes, m)
+        main = by_class.argmax(axis=0)  # first maximum: ties go to the smallest label
+        return main, by_class.max(axis=0), counts[y * m + rows]
+    ordered = np.sort(labels.T, axis=1)  # (m, K), each row ascending
+    starts = np.ones_like(ordered, dtype=bool)
+    np.not_equal(ordered[:, 1:], ordered[:, :-1], out=starts[:, 1:])
+    run = np.cumsum(starts, axis=1) - 1 + (rows * n_seeds)[:, np.newaxis]
+    run_length = np.bincount(run.reshape(-1), minlength=m * n_seeds)
+    per_seed = run_length[run]  # (m, K): size of the run each label belongs to
+    first = per_seed.argmax(axis=1)  # first maximum: the smallest label among ties
+    main = ordered[rows, first]
+    count_true = np.count_nonzero(labels == y, axis=0)
+    return main, per_seed[rows, first], count_true
+
+
 def zero_one_decomposition(
     y_true: ArrayLike,
     labels: ArrayLike,
@@ -286,24 +315,13 @@ def zero_one_decomposition(
     w = as_weights(sample_weight, n)
 
     block = _block_rows(n_seeds)
-    rows = np.arange(min(block, n), dtype=np.intp)
-    index_buf = np.empty((n_seeds, rows.size), dtype=np.intp)
     # Sums over rows of: seeds wrong, [m != y], seeds != m, seeds != m where m == y,
     # seeds == y where m != y. Integers (exact) without weights, floats with.
     sums = np.zeros(5, dtype=np.int64 if w is None else np.float64)
     for start in range(0, n, block):
         stop = min(start + block, n)
-        size = stop - start
         yb = y[start:stop]
-        idx = index_buf[:, :size]
-        # counts laid out (C, size): count of class c on row j sits at c * size + j
-        np.multiply(lab[:, start:stop], size, out=idx)
-        idx += rows[:size]
-        counts = np.bincount(idx.reshape(-1), minlength=n_cls * size)
-        by_class = counts.reshape(n_cls, size)
-        main = by_class.argmax(axis=0)  # first maximum: ties go to the smallest label
-        count_main = by_class.max(axis=0)
-        count_true = counts[yb * size + rows[:size]]
+        main, count_main, count_true = _main_prediction(lab[:, start:stop], yb, n_cls)
         biased = main != yb
         wrong = n_seeds - count_true
         off_main = n_seeds - count_main

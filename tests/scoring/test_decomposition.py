@@ -231,7 +231,7 @@ def _domingos_rows(y: np.ndarray, lab: np.ndarray) -> dict[str, np.ndarray]:
     return {"main": main, "loss": loss, "bias": bias, "variance": variance, "c": c}
 
 
-@pytest.mark.parametrize("n_classes", [2, 3, 5])
+@pytest.mark.parametrize("n_classes", [2, 3, 5, 40])  # 40 > K: the sort-based mode
 @pytest.mark.parametrize("weighted", [False, True])
 def test_zero_one_terms_and_domingos_identity(n_classes: int, weighted: bool) -> None:
     y, lab = _labels(10 + n_classes, n=300, k=9, n_classes=n_classes)
@@ -265,13 +265,42 @@ def test_zero_one_terms_and_domingos_identity(n_classes: int, weighted: bool) ->
     assert expected == approx(bias + unbiased_var - biased_var, rel=TIGHT)
 
 
-def test_zero_one_ties_go_to_the_smallest_label() -> None:
-    # two seeds disagree on every row: each main prediction is the smaller of the two labels
-    y = np.array([0, 1, 2, 2])
-    lab = np.array([[2, 1, 0, 1], [1, 2, 2, 0]])
+@pytest.mark.parametrize(
+    "lab",
+    [
+        np.array([[2, 1, 0, 1], [1, 2, 2, 0]]),  # K = 2 < C = 3: sort-based mode
+        np.array([[2, 1, 0, 1], [1, 2, 2, 0], [2, 1, 0, 1], [1, 2, 2, 0]]),  # K >= C: counts
+    ],
+)
+def test_zero_one_ties_go_to_the_smallest_label(lab: np.ndarray) -> None:
+    # the seeds split evenly between two labels on every row
+    y = np.array([2, 2, 0, 1])
     d = zero_one_decomposition(y, lab, n_classes=3)
     main = stats.mode(lab, axis=0).mode  # reference: scipy.stats.mode (smallest on ties)
+    assert np.array_equal(main, np.minimum(lab[0], lab[1]))
     assert d.bias == approx(zero_one_loss(y, main), rel=TIGHT)  # reference: sklearn
+
+
+@PROPERTY
+@given(
+    st.tuples(
+        st.integers(min_value=0, max_value=2**32 - 1),  # data seed
+        st.integers(min_value=1, max_value=40),  # rows
+        st.integers(min_value=1, max_value=8),  # seeds
+        st.integers(min_value=2, max_value=8),  # classes
+    )
+)
+def test_property_unused_classes_change_nothing(shape) -> None:
+    # a larger n_classes (unused classes) moves the mode from class counts (C <= K) to the
+    # sort-based path (C > K); Domingos' terms depend only on the labels that occur
+    seed, n, k, c = shape
+    y, lab = _labels(seed, n, k, c)
+    _assert_same(
+        zero_one_decomposition(y, lab, n_classes=c),
+        zero_one_decomposition(y, lab, n_classes=c + k + 3),
+        rel=0.0,
+        abs_=0.0,
+    )
 
 
 # ----------------------------------------------------------------------------- log loss
