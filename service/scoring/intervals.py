@@ -18,6 +18,7 @@ whatever the dependence between seeds.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable, Sequence
 
@@ -29,8 +30,10 @@ from .options import DEFAULT_BOOTSTRAP_SEED
 from .results import Interval
 
 
+@functools.lru_cache(maxsize=64)
 def z_value(level: float) -> float:
-    """Two-sided standard normal quantile for a confidence level."""
+    """Two-sided standard normal quantile for a confidence level (cached: scipy's ppf is slow
+    to call)."""
     return float(stats.norm.ppf(0.5 + level / 2.0))
 
 
@@ -264,6 +267,7 @@ def monotone_interval(
     return Interval(low, high, interval.level, interval.method, note or interval.note)
 
 
+@functools.lru_cache(maxsize=256)
 def order_statistic_ranks(n: int, quantile: float, level: float) -> tuple[int, int] | None:
     """0-based ranks (low, high) of the distribution-free interval for a population quantile.
 

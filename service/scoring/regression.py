@@ -39,6 +39,7 @@ Shapes: ``y_true`` (n,); ``predictions`` (K, n) for K seeds, or (n,) for one.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -73,20 +74,27 @@ METRICS: tuple[str, ...] = (
 MAPE_EPSILON: float = float(np.finfo(np.float64).eps)
 """MAPE's denominator floor, ``max(|y|, MAPE_EPSILON)``, as in scikit-learn."""
 
-_CHUNK = 65_536
-"""Rows per block of the fused pass: the block's working arrays stay in the core's cache."""
+_BLOCK_VALUES = 1 << 17
+"""Values per block of the fused pass (1 MiB of float64 over all seeds): in cache."""
+
+_MIN_BLOCK_ROWS = 1024
+"""Lower bound on rows per block, so many seeds do not shrink blocks to a few rows."""
 
 _BRACKET_MIN_ROWS = 1 << 16
-"""From this many rows on, the median is selected by a sampled bracket (``_OrderStatistics``)."""
+"""From this many rows on, the median is selected through a sampled bracket."""
 
 _SAMPLE_SIZE = 1 << 14
-"""Rows sampled per seed to place the bracket around the median."""
+"""Rows sampled to place each seed's bracket around its median."""
 
 _SAMPLE_SEED = 1_202_2026
 """Fixed seed of the bracket's row sample: the same input always takes the same path."""
 
 _BRACKET_Z = 5.0
 """Bracket margin in binomial standard deviations of the sample rank (miss chance ~ 1e-6)."""
+
+_EV_SHORTCUT_TOLERANCE = 1e-3
+"""The explained variance interval takes its one-pass form when that moves the half-width
+by at most this share (see ``_explained_variance_interval``)."""
 
 _EV_EXACT_SHARE = 0.5
 """Explained variance's numerator is var(r) = mean(r^2) - mean(r)^2; when mean(r)^2 is at
@@ -122,7 +130,7 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
     np.multiply(centred_sq, centred_sq, out=centred_sq)
     if w is None:
         r2_den = float(centred_sq.sum())
-        ev_den = float(centred_sq.mean())
+        ev_den = r2_den / y.size  # what np.mean computes, so the same bits as sklearn's
         weight_sum = float(y.size)
     else:
         r2_den = float(np.multiply(w, centred_sq).sum())
@@ -149,206 +157,205 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
 
 @dataclass
 class _PassResult:
-    """Per-seed sums of one fused pass (weighted sums when weights are given)."""
+    """Sums of one fused pass, one entry per prediction row: the K seeds, then (when asked)
+    the seed-averaged prediction. Sums are weighted when weights are given."""
 
-    sum_residual: NDArray[np.float64]  # (K,) sum w r
-    sum_squared: NDArray[np.float64]  # (K,) sum w r^2
-    sum_absolute: NDArray[np.float64]  # (K,) sum w |r|
-    sum_percentage: NDArray[np.float64]  # (K,) sum w |r| / max(|y|, eps)
-    max_absolute: NDArray[np.float64]  # (K,) max |r| (over rows of positive weight)
-    median: NDArray[np.float64] | None  # (K,) median |r| (weighted: scikit-learn's rule)
-    median_low: NDArray[np.float64] | None  # (K,) order-statistic interval, per seed
+    sum_residual: NDArray[np.float64]  # sum w r
+    sum_squared: NDArray[np.float64]  # sum w r^2
+    sum_absolute: NDArray[np.float64]  # sum w |r|
+    sum_percentage: NDArray[np.float64]  # sum w |r| / max(|y|, eps)
+    max_absolute: NDArray[np.float64]  # max |r| (over rows of positive weight)
+    median: NDArray[np.float64] | None  # median |r| (weighted: scikit-learn's rule)
+    median_low: NDArray[np.float64] | None  # order-statistic interval of the median
     median_high: NDArray[np.float64] | None
-    row_squared: NDArray[np.float64] | None  # (n,) sum over seeds of r^2 (unweighted)
-    row_absolute: NDArray[np.float64] | None  # (n,) sum over seeds of |r|
-    row_prediction: NDArray[np.float64] | None  # (n,) sum over seeds of the predictions
+    row_squared: NDArray[np.float64] | None  # (n,) sum over the K seeds of r^2
+    row_absolute: NDArray[np.float64] | None  # (n,) sum over the K seeds of |r|
+    ensemble: NDArray[np.float64] | None  # (n,) the seed-averaged prediction
 
 
 def _fused_pass(
     ts: _TargetStats,
     predictions: NDArray[np.float64],
     *,
+    ensemble: bool = False,
     median: bool = True,
     median_interval_level: float | None = None,
     row_squared: bool = False,
     row_absolute: bool = False,
-    row_prediction: bool = False,
 ) -> _PassResult:
-    """Every per-seed sum the metrics need, in one blocked sweep over each seed's residuals.
+    """Every sum the metrics need, in one sweep over blocks of rows, all seeds at once.
 
-    The residuals r = p - y of one seed are formed once, block by block, and every sum is
-    taken while the block is in cache; no (K, n) temporary is made. The median (and the
-    order statistics of its interval) come from ``_OrderStatistics``, fed block by block.
-    With weights, |r| of the seed is kept whole for scikit-learn's weighted median.
+    For each block of rows, the residuals r = p - y of every seed (and, with ``ensemble``,
+    of the seed-averaged prediction, formed from the same block) are made once into one
+    small 2-d buffer, and every sum, the per-row accumulations over seeds and the median's
+    candidates are taken while it is in cache. The (K, n) predictions are read once; no
+    temporary of n rows per seed is made.
     """
     y, w = ts.y, ts.weights
     n_seeds, n = predictions.shape
-    chunk = min(_CHUNK, n)
-    block = np.empty(chunk)
-    block_sq = np.empty(chunk)
-    sums = np.zeros((5, n_seeds))
+    n_rows = n_seeds + int(ensemble)
+    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_rows))
+    resid = np.empty((n_rows, step))
+    squares = np.empty((n_rows, step))
+    s_r = np.zeros(n_rows)
+    s_sq = np.zeros(n_rows)
+    s_abs = np.zeros(n_rows)
+    s_pct = np.zeros(n_rows)
+    m_abs = np.full(n_rows, -np.inf if w is None else 0.0)
     rows_sq = np.empty(n) if row_squared else None
     rows_abs = np.empty(n) if row_absolute else None
-    rows_pred = np.empty(n) if row_prediction else None
+    pbar = np.empty(n) if ensemble else None
 
-    want_ci = median and median_interval_level is not None
-    med = np.empty(n_seeds) if median else None
-    med_low = np.full(n_seeds, np.nan) if want_ci else None
-    med_high = np.full(n_seeds, np.nan) if want_ci else None
-    selector = None
-    scratch = None
-    ci_ranks: tuple[int, int] | None = None
-    if median and w is None:
-        half = n // 2
-        median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
-        ci_ranks = (
-            order_statistic_ranks(n, 0.5, median_interval_level)
-            if median_interval_level is not None
-            else None
-        )
-        selector = _OrderStatistics(ts, median_ranks + (ci_ranks or ()))
-    elif median:
-        scratch = np.empty(n)
+    half = n // 2
+    median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
+    ci_ranks = None
+    if median and w is None and median_interval_level is not None:
+        ci_ranks = order_statistic_ranks(n, 0.5, median_interval_level)
+    selector = (
+        _BracketSelector(ts, predictions, ensemble, median_ranks + (ci_ranks or ()), step)
+        if median and w is None
+        else None
+    )
 
-    for k in range(n_seeds):
-        pk = predictions[k]
-        s_r = s_sq = s_abs = s_pct = 0.0
-        m_abs = 0.0 if w is not None else -np.inf
-        if selector is not None:
-            selector.start_seed(pk)
-        for start in range(0, n, chunk):
-            stop = min(start + chunk, n)
-            sl = slice(start, stop)
-            dest = block[: stop - start] if scratch is None else scratch[sl]
-            r = np.subtract(pk[sl], y[sl], out=dest)
-            sq = np.multiply(r, r, out=block_sq[: stop - start])
-            if w is None:
-                s_r += float(r.sum())
-                s_sq += float(sq.sum())
-            else:
-                s_r += float(np.einsum("i,i->", r, w[sl]))
-                s_sq += float(np.einsum("i,i->", sq, w[sl]))
-            if rows_sq is not None:
-                if k == 0:
-                    rows_sq[sl] = sq
-                else:
-                    rows_sq[sl] += sq
-            if rows_pred is not None:
-                if k == 0:
-                    rows_pred[sl] = pk[sl]
-                else:
-                    rows_pred[sl] += pk[sl]
-            a = np.abs(r, out=r)
-            if w is None:
-                s_abs += float(a.sum())
-                m_abs = max(m_abs, float(a.max()))
-            else:
-                s_abs += float(np.einsum("i,i->", a, w[sl]))
-                m_abs = max(m_abs, float(np.max(a, where=ts.positive[sl], initial=0.0)))
-            s_pct += float(np.einsum("i,i->", a, ts.weighted_inverse_scale[sl]))
-            if rows_abs is not None:
-                if k == 0:
-                    rows_abs[sl] = a
-                else:
-                    rows_abs[sl] += a
-            if selector is not None:
-                selector.add_block(a)
-        sums[:, k] = (s_r, s_sq, s_abs, s_pct, m_abs)
-        if med is None:
-            continue
-        if selector is not None:
-            found = selector.finish_seed()
-            half = n // 2
-            med[k] = found[half] if n % 2 else (found[half - 1] + found[half]) / 2
-            if ci_ranks is not None:
-                med_low[k], med_high[k] = found[ci_ranks[0]], found[ci_ranks[1]]
+    for start in range(0, n, step):
+        stop = min(start + step, n)
+        sl = slice(start, stop)
+        r = resid[:, : stop - start]
+        sq = squares[:, : stop - start]
+        block = predictions[:, sl]
+        np.subtract(block, y[sl], out=r[:n_seeds])
+        if pbar is not None:
+            mean_block = np.add.reduce(block, axis=0, out=pbar[sl])
+            mean_block /= n_seeds  # the same operations as predictions.mean(axis=0)
+            np.subtract(mean_block, y[sl], out=r[n_seeds])
+        np.multiply(r, r, out=sq)
+        if w is None:
+            s_r += r.sum(axis=1)
+            s_sq += sq.sum(axis=1)
         else:
-            assert scratch is not None and w is not None
-            med[k], lo, hi = _weighted_median(scratch, w, median_interval_level)
-            if want_ci:
-                med_low[k], med_high[k] = lo, hi
+            s_r += np.einsum("kc,c->k", r, w[sl])
+            s_sq += np.einsum("kc,c->k", sq, w[sl])
+        if rows_sq is not None:
+            np.add.reduce(sq[:n_seeds], axis=0, out=rows_sq[sl])
+        a = np.abs(r, out=r)
+        if w is None:
+            s_abs += a.sum(axis=1)
+            np.maximum(m_abs, a.max(axis=1), out=m_abs)
+        else:
+            s_abs += np.einsum("kc,c->k", a, w[sl])
+            np.maximum(m_abs, np.max(a, axis=1, where=ts.positive[sl], initial=0.0), out=m_abs)
+        s_pct += np.einsum("kc,c->k", a, ts.weighted_inverse_scale[sl])
+        if rows_abs is not None:
+            np.add.reduce(a[:n_seeds], axis=0, out=rows_abs[sl])
+        if selector is not None:
+            selector.add_block(a)
+
+    def prediction_row(k: int) -> NDArray[np.float64]:
+        if k < n_seeds:
+            return predictions[k]
+        assert pbar is not None
+        return pbar
+
+    med = med_low = med_high = None
+    if median:
+        med = np.empty(n_rows)
+        med_low = np.full(n_rows, np.nan)
+        med_high = np.full(n_rows, np.nan)
+        for k in range(n_rows):
+            if selector is not None:
+                found = selector.finish_row(k, lambda k=k: np.abs(prediction_row(k) - y))
+                med[k] = found[half] if n % 2 else (found[half - 1] + found[half]) / 2
+                if ci_ranks is not None:
+                    med_low[k], med_high[k] = found[ci_ranks[0]], found[ci_ranks[1]]
+            else:
+                assert w is not None
+                scratch = np.subtract(prediction_row(k), y)
+                np.abs(scratch, out=scratch)
+                med[k], med_low[k], med_high[k] = _weighted_median(
+                    scratch, w, median_interval_level
+                )
     return _PassResult(
-        sum_residual=sums[0],
-        sum_squared=sums[1],
-        sum_absolute=sums[2],
-        sum_percentage=sums[3],
-        max_absolute=sums[4],
+        sum_residual=s_r,
+        sum_squared=s_sq,
+        sum_absolute=s_abs,
+        sum_percentage=s_pct,
+        max_absolute=m_abs,
         median=med,
         median_low=med_low,
         median_high=med_high,
         row_squared=rows_sq,
         row_absolute=rows_abs,
-        row_prediction=rows_pred,
+        ensemble=pbar,
     )
 
 
-class _OrderStatistics:
-    """Exact order statistics of one seed's |r| at a few ranks near one quantile, blockwise.
+class _BracketSelector:
+    """Exact order statistics of each prediction row's |r| at a few ranks, fed block by block.
 
-    Small n (below ``_BRACKET_MIN_ROWS``): the blocks are copied into one array and
-    ``select_order_statistics`` partitions it. Large n: a fixed random sample of rows
-    (``_SAMPLE_SIZE``, drawn once per call with a fixed seed, the same rows for every
-    seed) gives a bracket [lo, hi] that holds the wanted ranks with overwhelming
-    probability (``_BRACKET_Z`` binomial standard deviations of margin); each block then
-    only counts its values below lo and keeps those inside [lo, hi] (a few percent of the
-    rows), which are sorted at the end. The bracket is verified by the counts; should it
-    miss (probability about 1e-6), the seed's |r| is recomputed and partitioned exactly.
-    Either way the result is exact; only the time differs.
+    A fixed random sample of rows (``_SAMPLE_SIZE``, drawn with a fixed seed, the same rows
+    for every seed) gives each seed a bracket [lo, hi] that holds the wanted ranks with
+    overwhelming probability (``_BRACKET_Z`` binomial standard deviations of margin). Each
+    block then only counts its values below lo and keeps those inside [lo, hi] (a few
+    percent of the rows), which are sorted at the end. The counts verify the bracket; should
+    it miss (probability about 1e-6 per seed), that seed's |r| is recomputed and partitioned
+    exactly (``select_order_statistics``). Either way the result is exact; only time differs.
+    Below ``_BRACKET_MIN_ROWS`` rows the bracket is the whole line: every value is kept.
     """
 
-    def __init__(self, ts: _TargetStats, ranks: tuple[int, ...]) -> None:
-        self.ts = ts
-        self.n = n = ts.y.size
+    def __init__(
+        self,
+        ts: _TargetStats,
+        predictions: NDArray[np.float64],
+        ensemble: bool,
+        ranks: tuple[int, ...],
+        step: int,
+    ) -> None:
+        n_seeds, n = predictions.shape
+        n_rows = n_seeds + int(ensemble)
         self.ranks = tuple(sorted(set(ranks)))
-        self.bracket = n >= _BRACKET_MIN_ROWS
-        if self.bracket:
-            rng = np.random.default_rng(_SAMPLE_SEED)
-            self.rows = np.sort(rng.integers(0, n, _SAMPLE_SIZE))
-            self.y_sample = ts.y[self.rows]
+        lo = np.full(n_rows, -np.inf)
+        hi = np.full(n_rows, np.inf)
+        if n >= _BRACKET_MIN_ROWS:
+            rows = np.sort(np.random.default_rng(_SAMPLE_SEED).integers(0, n, _SAMPLE_SIZE))
+            picked = predictions[:, rows]
+            if ensemble:
+                picked = np.vstack([picked, picked.mean(axis=0)])
+            picked -= ts.y[rows]
+            np.abs(picked, out=picked)
+            picked.sort(axis=1)
             margin = _BRACKET_Z * 0.5 * math.sqrt(_SAMPLE_SIZE)
-            self.j_lo = math.floor(self.ranks[0] / n * _SAMPLE_SIZE - margin)
-            self.j_hi = math.ceil((self.ranks[-1] + 1) / n * _SAMPLE_SIZE + margin)
-            self.below_mask = np.empty(min(_CHUNK, n), dtype=bool)
-            self.keep_mask = np.empty(min(_CHUNK, n), dtype=bool)
-        else:
-            self.values = np.empty(n)
-        self.pos = 0
-
-    def start_seed(self, prediction: NDArray[np.float64]) -> None:
-        self.prediction = prediction
-        self.pos = 0
-        if not self.bracket:
-            return
-        sample = np.subtract(prediction[self.rows], self.y_sample)
-        np.abs(sample, out=sample)
-        sample.sort()
-        self.lo = sample[self.j_lo] if self.j_lo >= 0 else -np.inf
-        self.hi = sample[self.j_hi] if self.j_hi < sample.size else np.inf
-        self.below = 0
-        self.kept: list[NDArray[np.float64]] = []
+            j_lo = math.floor(self.ranks[0] / n * _SAMPLE_SIZE - margin)
+            j_hi = math.ceil((self.ranks[-1] + 1) / n * _SAMPLE_SIZE + margin)
+            if j_lo >= 0:
+                lo = picked[:, j_lo].copy()
+            if j_hi < _SAMPLE_SIZE:
+                hi = picked[:, j_hi].copy()
+        self.lo = lo[:, np.newaxis]
+        self.hi = hi[:, np.newaxis]
+        self.below = np.zeros(n_rows, dtype=np.int64)
+        self.below_mask = np.empty((n_rows, step), dtype=bool)
+        self.keep_mask = np.empty((n_rows, step), dtype=bool)
+        self.parts: list[tuple[NDArray[np.float64], NDArray[np.intp]]] = []
 
     def add_block(self, a: NDArray[np.float64]) -> None:
-        m = a.size
-        if not self.bracket:
-            self.values[self.pos : self.pos + m] = a
-            self.pos += m
-            return
-        below = np.less(a, self.lo, out=self.below_mask[:m])
-        self.below += int(np.count_nonzero(below))
-        keep = np.less_equal(a, self.hi, out=self.keep_mask[:m])
-        np.not_equal(keep, below, out=keep)  # lo <= a <= hi (below implies <= hi)
-        self.kept.append(a[keep])
+        m = a.shape[1]
+        below = np.less(a, self.lo, out=self.below_mask[:, :m])
+        self.below += np.count_nonzero(below, axis=1)
+        keep = np.less_equal(a, self.hi, out=self.keep_mask[:, :m])
+        np.not_equal(keep, below, out=keep)  # lo <= a <= hi (a < lo implies a <= hi)
+        counts = np.count_nonzero(keep, axis=1)
+        offsets = np.concatenate(([0], np.cumsum(counts)))
+        self.parts.append((a[keep], offsets))
 
-    def finish_seed(self) -> dict[int, float]:
-        if not self.bracket:
-            return select_order_statistics(self.values, self.ranks)
-        kept = np.concatenate(self.kept)
-        self.kept = []
-        if self.below <= self.ranks[0] and self.below + kept.size > self.ranks[-1]:
+    def finish_row(
+        self, k: int, exact_values: Callable[[], NDArray[np.float64]]
+    ) -> dict[int, float]:
+        below = int(self.below[k])
+        kept = np.concatenate([vals[off[k] : off[k + 1]] for vals, off in self.parts])
+        if below <= self.ranks[0] and below + kept.size > self.ranks[-1]:
             kept.sort()
-            return {r: float(kept[r - self.below]) for r in self.ranks}
-        exact = np.abs(np.subtract(self.prediction, self.ts.y))
-        return select_order_statistics(exact, self.ranks)
+            return {r: float(kept[r - below]) for r in self.ranks}
+        return select_order_statistics(exact_values(), self.ranks)
 
 
 def _weighted_median(
@@ -390,7 +397,11 @@ def _weighted_median(
 
 
 def _explained_variance_numerator(
-    ts: _TargetStats, prediction: NDArray[np.float64], sum_residual: float, sum_squared: float
+    ts: _TargetStats,
+    prediction_row: Callable[[int], NDArray[np.float64]],
+    k: int,
+    sum_residual: float,
+    sum_squared: float,
 ) -> float:
     """Weighted variance of the residuals of one seed, as explained_variance_score's numerator."""
     mean_r = sum_residual / ts.weight_sum
@@ -398,7 +409,7 @@ def _explained_variance_numerator(
     if mean_r * mean_r < _EV_EXACT_SHARE * mean_sq:
         return mean_sq - mean_r * mean_r
     # scikit-learn's own two-pass formula, on y - p exactly as it computes it
-    diff = ts.y - prediction
+    diff = ts.y - prediction_row(k)
     diff_mean = np.average(diff, weights=ts.weights)
     diff -= diff_mean
     np.multiply(diff, diff, out=diff)
@@ -415,32 +426,54 @@ def _fraction_explained(numerator: float, denominator: float) -> float:
 
 
 def _metrics_from_pass(
-    ts: _TargetStats, predictions: NDArray[np.float64], res: _PassResult
+    ts: _TargetStats,
+    res: _PassResult,
+    prediction_row: Callable[[int], NDArray[np.float64]],
+    rows: slice = slice(None),
 ) -> dict[str, NDArray[np.float64]]:
-    """Per-seed metric values (K,) from the sums of a fused pass."""
-    n_seeds, n = predictions.shape
-    mse = res.sum_squared / ts.weight_sum
-    r2 = np.empty(n_seeds)
-    ev = np.empty(n_seeds)
-    for k in range(n_seeds):
-        r2[k] = (
-            math.nan if n < 2 else _fraction_explained(res.sum_squared[k], ts.r2_denominator)
-        )
+    """Metric values, one per prediction row of ``res`` selected by ``rows``.
+
+    ``prediction_row(k)`` returns row k's predictions, needed only for the explained
+    variance's two-pass fallback.
+    """
+    indices = range(res.sum_squared.size)[rows]
+    n = ts.y.size
+    sum_sq = res.sum_squared[rows]
+    mse = sum_sq / ts.weight_sum
+    r2 = np.empty(len(indices))
+    ev = np.empty(len(indices))
+    for j, k in enumerate(indices):
+        r2[j] = math.nan if n < 2 else _fraction_explained(sum_sq[j], ts.r2_denominator)
         ev_num = _explained_variance_numerator(
-            ts, predictions[k], float(res.sum_residual[k]), float(res.sum_squared[k])
+            ts, prediction_row, k, float(res.sum_residual[k]), float(res.sum_squared[k])
         )
-        ev[k] = _fraction_explained(ev_num, ts.ev_denominator)
+        ev[j] = _fraction_explained(ev_num, ts.ev_denominator)
+    assert res.median is not None
     out = {
         "mse": mse,
         "rmse": np.sqrt(mse),
-        "mae": res.sum_absolute / ts.weight_sum,
-        "median_absolute_error": res.median,
-        "max_error": res.max_absolute.copy(),
+        "mae": res.sum_absolute[rows] / ts.weight_sum,
+        "median_absolute_error": res.median[rows].copy(),
+        "max_error": res.max_absolute[rows].copy(),
         "r2": r2,
         "explained_variance": ev,
-        "mape": res.sum_percentage / ts.weight_sum,
+        "mape": res.sum_percentage[rows] / ts.weight_sum,
     }
     return {name: out[name] for name in METRICS}
+
+
+def _rows_of(
+    predictions: NDArray[np.float64], res: _PassResult
+) -> Callable[[int], NDArray[np.float64]]:
+    """``prediction_row`` for ``_metrics_from_pass``: the seeds, then the ensemble row."""
+
+    def prediction_row(k: int) -> NDArray[np.float64]:
+        if k < predictions.shape[0]:
+            return predictions[k]
+        assert res.ensemble is not None
+        return res.ensemble
+
+    return prediction_row
 
 
 # --------------------------------------------------------------------------------------
@@ -474,7 +507,8 @@ def regression_metrics(
     w = as_weights(sample_weight, y.size)
     ts = _target_stats(y, w)
     with np.errstate(over="ignore", invalid="ignore"):
-        return _metrics_from_pass(ts, p, _fused_pass(ts, p))
+        res = _fused_pass(ts, p)
+        return _metrics_from_pass(ts, res, _rows_of(p, res))
 
 
 def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[np.float64]:
@@ -597,19 +631,18 @@ def _regression_report(
         res = _fused_pass(
             ts,
             p,
+            ensemble=True,
             median_interval_level=level if with_intervals else None,
             row_squared=True,
             row_absolute=with_intervals,
-            row_prediction=True,
         )
-        per_seed = _metrics_from_pass(ts, p, res)
-        assert res.row_prediction is not None and res.row_squared is not None
-        ensemble_pred = np.divide(res.row_prediction, n_seeds, out=res.row_prediction)
-        ens = ensemble_pred[np.newaxis, :]
+        rows = _rows_of(p, res)
+        per_seed = _metrics_from_pass(ts, res, rows, slice(0, n_seeds))
         ensemble = {
             name: float(v[0])
-            for name, v in _metrics_from_pass(ts, ens, _fused_pass(ts, ens)).items()
+            for name, v in _metrics_from_pass(ts, res, rows, slice(n_seeds, None)).items()
         }
+        assert res.row_squared is not None
         row_losses = np.divide(res.row_squared, n_seeds, out=res.row_squared)
 
         train_scores = None
@@ -621,7 +654,7 @@ def _regression_report(
             tp = as_seed_predictions(train_predictions, ty.size, name="train_predictions")
             tts = _target_stats(ty, None)
             tres = _fused_pass(tts, tp, row_squared=True)
-            train_scores = _headline(_metrics_from_pass(tts, tp, tres))
+            train_scores = _headline(_metrics_from_pass(tts, tres, _rows_of(tp, tres)))
             assert tres.row_squared is not None
             train_row_losses = np.divide(tres.row_squared, tp.shape[0], out=tres.row_squared)
             baseline_centre = tts.mean
@@ -734,10 +767,12 @@ def _intervals(
         ratio = delta_ratio_interval(row_losses, ts.centred_sq, w, level)
         out["r2"] = monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
     out["explained_variance"] = _explained_variance_interval(ts, predictions, res, level)
-    if res.median_low is not None and np.isfinite(res.median_low).all():
+    assert res.median_low is not None and res.median_high is not None
+    lows, highs = res.median_low[:n_seeds], res.median_high[:n_seeds]  # not the ensemble row
+    if np.isfinite(lows).all() and np.isfinite(highs).all():
         per_seed = [
             Interval(float(lo), float(hi), level, "order_statistic")
-            for lo, hi in zip(res.median_low, res.median_high, strict=True)
+            for lo, hi in zip(lows, highs, strict=True)
         ]
         out["median_absolute_error"] = seed_mean_interval(per_seed, level)
     else:
@@ -757,33 +792,62 @@ def _explained_variance_interval(
 ) -> Interval:
     """Delta method for 1 - mean(a) / mean(b) with a_i = mean_k (r_ki - rbar_k)^2.
 
-    a_i = (mean_k r_ki^2) - (2 / K) sum_k rbar_k r_ki + mean_k rbar_k^2, and
-    sum_k rbar_k r_ki = sum_k rbar_k p_ki - y_i sum_k rbar_k: one weighted sum over seeds.
+    Exactly, a_i = u_i - (2 / K) c_i + mean_k rbar_k^2 with u_i the row loss averaged over
+    seeds and c_i = sum_k rbar_k r_ki, a weighted sum over the K seeds (a pass over the
+    (K, n) predictions). Writing rbar_k = rho + delta_k (rho their mean), c_i = K rho e_i +
+    t_i, with e_i the seed-averaged prediction's residual and t_i = sum_k delta_k (p_ki -
+    pbar_i). Dropping t_i leaves a'_i = u_i - 2 rho e_i + const (const chosen so that
+    mean(a') = mean(a)), a pass over n values only. By Cauchy-Schwarz the root mean square
+    of (2 / K) t_i is at most (2 / sqrt(K)) |delta| sqrt(V), V the variance term (mean MSE
+    over seeds minus the ensemble's MSE), and the interval's standard error moves by at most
+    that much over mean(b) sqrt(n_eff). When that bound is below ``_EV_SHORTCUT_TOLERANCE``
+    of the half-width (seeds with nearly equal mean residuals, typical at large n), a' is
+    used; otherwise the exact a.
     """
     n_seeds, n = predictions.shape
     if ts.ev_denominator == 0.0:
         return no_interval(level, "constant targets: explained_variance is set by convention")
     if n < 2:
         return no_interval(level, "needs at least two rows")
-    assert res.row_squared is not None
-    rbar = res.sum_residual / ts.weight_sum
-    total = float(rbar.sum())
-    constant = float(np.mean(rbar * rbar))
-    scale = -2.0 / n_seeds
+    assert res.row_squared is not None and res.ensemble is not None
+    wsum = ts.weight_sum
+    rbar = res.sum_residual[:n_seeds] / wsum  # the seeds, not the ensemble row
+    rho = float(rbar.mean())
+    mean_sq_rbar = float(np.mean(rbar * rbar))
+    spread = float(np.sqrt(np.sum((rbar - rho) ** 2)))
+    variance_term = max(
+        0.0, float(res.sum_squared[:n_seeds].mean()) / wsum - float(res.sum_squared[n_seeds]) / wsum
+    )
+    bound = 2.0 / math.sqrt(n_seeds) * spread * math.sqrt(variance_term)
+
     a = np.empty(n)
-    tmp = np.empty(min(_CHUNK, n))
-    for start in range(0, n, _CHUNK):
-        stop = min(start + _CHUNK, n)
+    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_seeds))
+    tmp = np.empty(step)
+    for start in range(0, n, step):  # a'_i = u_i - 2 rho e_i + 2 rho^2 - mean(rbar^2)
+        stop = min(start + step, n)
         sl = slice(start, stop)
-        t = tmp[: stop - start]
-        c = np.multiply(predictions[0, sl], rbar[0], out=a[sl])
-        for k in range(1, n_seeds):
-            c += np.multiply(predictions[k, sl], rbar[k], out=t)
-        c -= np.multiply(ts.y[sl], total, out=t)
-        c *= scale
+        c = np.subtract(res.ensemble[sl], ts.y[sl], out=a[sl])
+        c *= -2.0 * rho
         c += res.row_squared[sl]  # the per-row losses averaged over seeds
-        c += constant
+        c += 2.0 * rho * rho - mean_sq_rbar
     ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
+    if bound > 0.0 and ratio.method != "none":
+        n_eff = float(n) if ts.weights is None else wsum * wsum / float(
+            np.einsum("i,i->", ts.weights, ts.weights)
+        )
+        half = (ratio.high - ratio.low) / 2.0
+        shift = z_value(level) * bound / (ts.ev_denominator * math.sqrt(n_eff - 1.0))
+        if not shift <= _EV_SHORTCUT_TOLERANCE * half:
+            total = float(rbar.sum())
+            for start in range(0, n, step):  # exact: a_i = u_i - (2/K) c_i + mean(rbar^2)
+                stop = min(start + step, n)
+                sl = slice(start, stop)
+                c = np.einsum("k,kc->c", rbar, predictions[:, sl], out=a[sl])
+                c -= np.multiply(ts.y[sl], total, out=tmp[: stop - start])
+                c *= -2.0 / n_seeds
+                c += res.row_squared[sl]
+                c += mean_sq_rbar
+            ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
     return monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
 
 

@@ -473,6 +473,37 @@ def test_r2_and_explained_variance_intervals_match_a_bootstrap_reference() -> No
         assert abs(got.high - ref.high) < 0.1 * width, name
 
 
+@pytest.mark.parametrize("weighted", [False, True])
+def test_explained_variance_interval_shortcut_agrees_with_the_exact_form(
+    monkeypatch, weighted: bool
+) -> None:
+    from service.scoring import regression
+
+    rng = np.random.default_rng(17)
+    n, k = 4000, 4
+    y = rng.normal(size=n)
+    noise = rng.normal(size=(k, n))
+    w = rng.uniform(0.5, 2.0, size=n) if weighted else None
+
+    def interval(preds: np.ndarray, tolerance: float):
+        monkeypatch.setattr(regression, "_EV_SHORTCUT_TOLERANCE", tolerance)
+        return regression.regression_report(y, preds, sample_weight=w).intervals[
+            "explained_variance"
+        ]
+
+    # seeds with equal mean residuals: the one-pass form is exact (rbar_k all equal)
+    centred = noise - np.average(noise, axis=1, weights=w)[:, None]
+    equal = y + 0.2 + 0.5 * rng.normal(size=n) + 0.3 * centred
+    short, exact = interval(equal, math.inf), interval(equal, 0.0)
+    assert (short.low, short.high) == pytest.approx((exact.low, exact.high), rel=1e-9)
+    # seeds with different biases: both forms have the same centre, and the half-widths
+    # differ by at most the Cauchy-Schwarz bound (a few percent here)
+    biased = y + 0.5 * rng.normal(size=n) + 0.3 * noise + np.array([[0.0], [0.1], [0.2], [0.3]])
+    short, exact = interval(biased, math.inf), interval(biased, 0.0)
+    assert (short.low + short.high) / 2 == pytest.approx((exact.low + exact.high) / 2, rel=1e-9)
+    assert short.high - short.low == pytest.approx(exact.high - exact.low, rel=0.05)
+
+
 def test_constant_targets_and_tiny_samples_give_reasoned_none_intervals() -> None:
     report = regression_report(np.full(8, 2.0), np.vstack([np.full(8, 2.5), np.full(8, 1.0)]))
     assert report.intervals["r2"].method == "none" and "constant" in report.intervals["r2"].note
