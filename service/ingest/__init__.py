@@ -7,18 +7,34 @@ to fix (HTTP status, field, count, up to ten examples from the submitter's own i
 
 from .align import align_ids, require_unique_ids
 from .arrays import float_matrix, id_array, label_matrix, probability_tensor, target_vector
+from .body import decode_body
 from .errors import IngestError
 from .limits import DEFAULT_LIMITS, Limits
+from .tables import (
+    CSV_MEDIA_TYPE,
+    PARQUET_MEDIA_TYPE,
+    SubmissionArrays,
+    holdout_from_table,
+    read_table,
+    submission_from_table,
+)
 
 __all__ = [
+    "CSV_MEDIA_TYPE",
     "DEFAULT_LIMITS",
+    "PARQUET_MEDIA_TYPE",
     "IngestError",
     "Limits",
+    "SubmissionArrays",
     "align_ids",
+    "decode_body",
     "float_matrix",
+    "holdout_from_table",
     "id_array",
     "label_matrix",
     "probability_tensor",
+    "read_table",
     "require_unique_ids",
+    "submission_from_table",
     "target_vector",
 ]

@@ -257,10 +257,12 @@ def text_problems(
 
 
 def raise_first(problems: list[IngestError]) -> None:
-    if problems:
-        first = problems[0]
+    """Raise the first problem carrying all the others (and theirs) in ``more``."""
+    flat = [q for p in problems for q in (p, *p.more)]
+    if flat:
+        first = flat[0]
         raise IngestError(first.status, first.field, first.message, count=first.count,
-                          examples=first.examples, more=problems[1:])
+                          examples=first.examples, more=flat[1:])
 
 
 def text_to_numpy(arr: pa.Array) -> NDArray[Any]:

@@ -257,7 +257,7 @@ def probability_tensor(
     return out
 
 
-def _bracket(c: int) -> str:
+def _bracket(k: int, c: int) -> str:
     return f"[{c}]"
 
 
@@ -265,12 +265,12 @@ def check_probabilities(
     field: str,
     q: NDArray[np.float64],
     locate_row: Callable[[int, int], str],
-    describe_class: Callable[[int], str] = _bracket,
+    describe_class: Callable[[int, int], str] = _bracket,
 ) -> None:
     """422 for non-finite values, values outside [0, 1], and rows not summing to 1.
 
     ``q`` has shape (K, n, C); ``locate_row(k, i)`` names a row as the submitter sees it and
-    ``describe_class(c)`` names a class position within it (default ``[c]``).
+    ``describe_class(k, c)`` names a class position within it (default ``[c]``).
     """
 
     shape = q.shape
@@ -280,7 +280,7 @@ def check_probabilities(
         examples = []
         for f in bad[:MAX_EXAMPLES]:
             k, i, c = np.unravel_index(int(f), shape)
-            examples.append(f"{locate_row(int(k), int(i))}{describe_class(int(c))} = "
+            examples.append(f"{locate_row(int(k), int(i))}{describe_class(int(k), int(c))} = "
                             f"{show_value(float(q[k, i, c]))}")
         raise content_error(field, int(bad.size), "probabilities are NaN or infinite", examples)
     problems: list[IngestError] = []
@@ -290,7 +290,7 @@ def check_probabilities(
         examples = []
         for f in bad[:MAX_EXAMPLES]:
             k, i, c = np.unravel_index(int(f), shape)
-            examples.append(f"{locate_row(int(k), int(i))}{describe_class(int(c))} = "
+            examples.append(f"{locate_row(int(k), int(i))}{describe_class(int(k), int(c))} = "
                             f"{show_value(float(q[k, i, c]))}")
         problems.append(content_error(field, int(bad.size), "probabilities are outside [0, 1]",
                                       examples))

@@ -1,0 +1,507 @@
+"""CSV and Parquet bodies to checked arrays: holdouts and submissions.
+
+Media types: ``text/csv`` (RFC 4180, UTF-8, first line is the header; a UTF-8 byte order
+mark is skipped) and ``application/vnd.apache.parquet``.
+
+Holdout table: column ``id`` and column ``y_true`` (names can be changed by the caller),
+nothing else.
+
+Submission table, one row per id, any row order:
+
+- ``id``: the row's id (text or integers; CSV ids are always read as text, so ``007``
+  stays ``007``);
+- regression: ``pred`` (one seed) or ``pred.<seed>`` for each of K seeds, where ``<seed>``
+  is any label without dots (``pred.0``, ``pred.seed-17``...), holding numbers;
+- classification: ``pred`` / ``pred.<seed>`` hold predicted class labels, and
+  ``prob.<class>`` (one seed) or ``prob.<seed>.<class>`` hold the predicted probability
+  of each class (one column per class of the holdout, each row summing to 1 within
+  ``PROBABILITY_SUM_TOLERANCE``). Labels, probabilities or both may be sent; when both,
+  every seed needs both. Class labels may contain dots; seed labels may not.
+
+Every other column is refused (422), as are repeated column names. Numbers in CSV are
+plain decimal text (``0.25``, ``-3e-2``); ``nan`` and ``inf`` parse but are refused as
+non-finite, and an empty cell is a missing value, not zero. Rows are counted from 1 after
+the header in messages.
+"""
+
+from __future__ import annotations
+
+import re
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+from numpy.typing import NDArray
+
+from ._convert import (
+    Tally,
+    floats_from_arrow,
+    nonfinite_error,
+    raise_first,
+    text_from_arrow,
+    text_to_numpy,
+)
+from .align import require_unique_ids
+from .arrays import check_probabilities, check_task, class_array, unknown_labels_error
+from .errors import MAX_EXAMPLES, IngestError, content_error, show_text, show_value
+from .limits import DEFAULT_LIMITS, Limits
+
+CSV_MEDIA_TYPE = "text/csv"
+PARQUET_MEDIA_TYPE = "application/vnd.apache.parquet"
+ID_COLUMN = "id"
+SINGLE_SEED_LABEL = "0"
+"""Seed label reported for a table with one unlabeled seed (``pred`` / ``prob.<class>``)."""
+
+_PARSE_ERRORS = (pa.ArrowException, OSError, ValueError, EOFError, IndexError, KeyError,
+                 TypeError, OverflowError, MemoryError)
+_HEADER_BLOCK = 1 << 20
+
+
+@dataclass(frozen=True)
+class SubmissionArrays:
+    """A submission in the order it was sent (align with ``align_ids`` before scoring).
+
+    ``ids`` (n,); ``predictions`` (K, n) for regression; ``labels`` (K, n) class indices and
+    ``probabilities`` (K, n, C) for classification, each None when not sent; ``seeds`` the
+    K seed labels in column order.
+    """
+
+    ids: NDArray[Any]
+    predictions: NDArray[np.float64] | None
+    labels: NDArray[np.intp] | None
+    probabilities: NDArray[np.float64] | None
+    seeds: list[str]
+
+
+def _row(i: int) -> str:
+    return f"row {i + 1}"
+
+
+# --------------------------------------------------------------------------------- reading
+
+
+def _media_type(media_type: str) -> str:
+    main, _, params = (media_type or "").partition(";")
+    main = main.strip().lower()
+    if main not in (CSV_MEDIA_TYPE, PARQUET_MEDIA_TYPE):
+        raise IngestError(
+            415, "Content-Type",
+            f"Content-Type: {media_type!r} is not supported; send {CSV_MEDIA_TYPE} or "
+            f"{PARQUET_MEDIA_TYPE}",
+            count=1, examples=[media_type or ""],
+        )
+    for param in params.split(";"):
+        key, _, value = param.partition("=")
+        if key.strip().lower() == "charset":
+            charset = value.strip().strip('"').lower()
+            if charset not in ("utf-8", "utf8", "us-ascii"):
+                raise IngestError(
+                    415, "Content-Type",
+                    f"Content-Type: charset {charset!r} is not supported; send UTF-8",
+                    count=1, examples=[media_type],
+                )
+    return main
+
+
+def _duplicate_columns(names: Sequence[str]) -> None:
+    repeated = [name for name, n in Counter(names).items() if n > 1]
+    if repeated:
+        raise content_error(
+            "columns", len(repeated), "column names appear more than once",
+            [show_text(name) for name in repeated], hint="every column needs its own name",
+        )
+
+
+def _unreadable(kind: str, exc: BaseException) -> IngestError:
+    detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    detail = re.sub(r"\bRow #(\d+)", r"line \1", detail)  # Arrow counts the header line too
+    return IngestError(400, "body", f"body: not a readable {kind} file ({detail[:300]})", count=1)
+
+
+def _csv_column_types(
+    names: Sequence[str], task: str | None, id_column: str, target_column: str
+) -> dict[str, pa.DataType]:
+    types: dict[str, pa.DataType] = {}
+    for name in names:
+        numeric = name.startswith("prob.") or (
+            task == "regression"
+            and (name == "pred" or name.startswith("pred.") or name == target_column)
+        )
+        types[name] = pa.float64() if numeric and name != id_column else pa.string()
+    return types
+
+
+def _read_csv(body: bytes, limits: Limits, task: str | None, id_column: str,
+              target_column: str) -> pa.Table:
+    source = pa.py_buffer(body)
+    try:
+        header = pacsv.open_csv(
+            pa.BufferReader(source),
+            read_options=pacsv.ReadOptions(use_threads=False, block_size=_HEADER_BLOCK),
+        )
+        names = header.schema.names
+    except _PARSE_ERRORS as exc:
+        raise _unreadable("CSV", exc) from None
+    _duplicate_columns(names)
+    typed = _csv_column_types(names, task, id_column, target_column)
+    as_text = {name: pa.string() for name in names}
+    read_options = pacsv.ReadOptions(use_threads=False)
+    table = None
+    for column_types in ((typed, as_text) if typed != as_text else (as_text,)):
+        convert = pacsv.ConvertOptions(
+            column_types=column_types, null_values=[], strings_can_be_null=False,
+            quoted_strings_can_be_null=False, true_values=[], false_values=[],
+        )
+        try:
+            table = pacsv.read_csv(pa.BufferReader(source), read_options=read_options,
+                                   convert_options=convert)
+            break
+        except _PARSE_ERRORS as exc:
+            # A number column that does not parse is read again as text, so the checks
+            # below can name every bad cell; anything else is a malformed file.
+            if column_types is as_text:
+                raise _unreadable("CSV", exc) from None
+    assert table is not None
+    return table
+
+
+def _read_parquet(body: bytes, limits: Limits) -> pa.Table:
+    try:
+        parquet = pq.ParquetFile(pa.BufferReader(pa.py_buffer(body)))
+        meta = parquet.metadata
+        names = parquet.schema_arrow.names
+        n_rows = meta.num_rows
+        unpacked = sum(meta.row_group(i).total_byte_size for i in range(meta.num_row_groups))
+    except _PARSE_ERRORS as exc:
+        raise _unreadable("Parquet", exc) from None
+    if n_rows > limits.max_rows:
+        raise IngestError(
+            413, "body", f"body: the table has {n_rows} rows, more than the limit of "
+            f"{limits.max_rows}", count=1,
+        )
+    if unpacked > limits.max_body_bytes:
+        raise IngestError(
+            413, "body", f"body: the Parquet data unpacks to {unpacked} bytes, more than the "
+            f"limit of {limits.max_body_bytes}", count=1,
+        )
+    _duplicate_columns(names)
+    try:
+        return parquet.read(use_threads=False)
+    except _PARSE_ERRORS as exc:
+        raise _unreadable("Parquet", exc) from None
+
+
+def read_table(
+    body: bytes,
+    media_type: str,
+    *,
+    limits: Limits | None = None,
+    task: str | None = None,
+    id_column: str = ID_COLUMN,
+    target_column: str = "y_true",
+) -> pa.Table:
+    """Parse a CSV or Parquet body into an Arrow table (content is checked later).
+
+    Parameters
+    ----------
+    body : bytes
+        The decoded body (``decode_body``).
+    media_type : str
+        The Content-Type: ``text/csv`` (optionally ``; charset=utf-8``) or
+        ``application/vnd.apache.parquet``; anything else is 415.
+    task : {"regression", "classification"} or None
+        Optional. For CSV it lets number columns (``pred*`` and the target for regression,
+        ``prob.*`` always) be parsed straight to float64, which is faster; without it they
+        are read as text and parsed later. The id column is always read as text.
+
+    Raises
+    ------
+    IngestError
+        400 for an empty or malformed file, 413 for too many rows (or, for Parquet, too
+        many bytes once unpacked), 415 for other media types, 422 for repeated column names.
+    """
+    limits = limits or DEFAULT_LIMITS
+    if task is not None:
+        check_task(task)
+    kind = _media_type(media_type)
+    if not body:
+        raise IngestError(400, "body", "body: the request body is empty", count=1)
+    if kind == CSV_MEDIA_TYPE:
+        table = _read_csv(body, limits, task, id_column, target_column)
+    else:
+        table = _read_parquet(body, limits)
+    if table.num_rows > limits.max_rows:
+        raise IngestError(
+            413, "body", f"body: the table has {table.num_rows} rows, more than the limit of "
+            f"{limits.max_rows}", count=1,
+        )
+    return table
+
+
+# ------------------------------------------------------------------------------ columns
+
+
+def _check_columns(table: pa.Table, limits: Limits) -> list[str]:
+    names = list(table.column_names)
+    _duplicate_columns(names)
+    if table.num_rows == 0:
+        raise IngestError(422, "body", "body: the table has no rows", count=0)
+    if table.num_rows > limits.max_rows:
+        raise IngestError(
+            413, "body", f"body: the table has {table.num_rows} rows, more than the limit of "
+            f"{limits.max_rows}", count=1,
+        )
+    return names
+
+
+def _missing_column(name: str, names: Sequence[str]) -> IngestError:
+    return IngestError(
+        422, "columns",
+        f"columns: the required column {name!r} is missing; the table has "
+        f"{len(names)} columns" + (": " + ", ".join(show_text(c) for c in names[:MAX_EXAMPLES])
+                                    if names else ""),
+        count=1, examples=[show_text(c) for c in names[:MAX_EXAMPLES]],
+    )
+
+
+def _unknown_columns(unknown: Sequence[str], hint: str) -> IngestError:
+    return content_error("columns", len(unknown), "columns are not part of the layout",
+                         [show_text(c) for c in unknown], hint=hint)
+
+
+def _ids(table: pa.Table, id_column: str, limits: Limits) -> NDArray[Any]:
+    arr = text_from_arrow(table.column(id_column), id_column, _row, limits, labels=False,
+                          noun="ids")
+    return text_to_numpy(arr)
+
+
+def holdout_from_table(
+    table: pa.Table,
+    *,
+    task: str,
+    id_column: str = ID_COLUMN,
+    target_column: str = "y_true",
+    limits: Limits | None = None,
+) -> tuple[NDArray[Any], NDArray[Any]]:
+    """A holdout's ids (n,) and targets (n,) from a table with exactly those two columns.
+
+    Ids must be unique. Targets are finite float64 for regression, canonical label text for
+    classification (see ``service.ingest.arrays``).
+    """
+    limits = limits or DEFAULT_LIMITS
+    check_task(task)
+    names = _check_columns(table, limits)
+    for required in (id_column, target_column):
+        if required not in names:
+            raise _missing_column(required, names)
+    unknown = [c for c in names if c not in (id_column, target_column)]
+    if unknown:
+        raise _unknown_columns(
+            unknown, f"a holdout table has exactly the columns {id_column!r} and "
+            f"{target_column!r}",
+        )
+    ids = _ids(table, id_column, limits)
+    require_unique_ids(ids, field=id_column)
+    column = table.column(target_column)
+    if task == "regression":
+        targets = floats_from_arrow(column, target_column, _row)
+        err = nonfinite_error(target_column, targets, _row)
+        if err is not None:
+            raise err
+        return ids, targets
+    labels = text_from_arrow(column, target_column, _row, limits, labels=True, noun="labels")
+    return ids, text_to_numpy(labels)
+
+
+@dataclass
+class _Layout:
+    seeds: list[str]
+    pred: dict[str, str]  # seed -> column
+    prob: dict[str, list[str]]  # seed -> one column per class, in class order
+
+
+_LAYOUT_HINT = (
+    "expected 'id', then 'pred' or 'pred.<seed>' columns{extra}"
+)
+
+
+def _seed_label_problems(columns: Sequence[str], prefix: str) -> list[str]:
+    return [c for c in columns if not c[len(prefix):] or "." in c[len(prefix):]]
+
+
+def _layout(names: Sequence[str], task: str, classes: Sequence[str] | None) -> _Layout:
+    others = [c for c in names if c != ID_COLUMN]
+    single = "pred" in others
+    multi = [c for c in others if c.startswith("pred.")]
+    probs = [c for c in others if c.startswith("prob.")] if task == "classification" else []
+    extra = " and 'prob.<class>' or 'prob.<seed>.<class>' columns" if task == "classification" \
+        else " (prob.* columns are for classification)"
+    hint = _LAYOUT_HINT.format(extra=extra)
+    unknown = [c for c in others if c != "pred" and c not in multi and c not in probs]
+    if unknown:
+        raise _unknown_columns(unknown, hint)
+    if single and multi:
+        raise content_error(
+            "columns", len(multi), "'pred.<seed>' columns appear beside a plain 'pred' column",
+            [show_text(c) for c in multi],
+            hint="use 'pred' for one seed, or only 'pred.<seed>' columns for several",
+        )
+    bad_labels = _seed_label_problems(multi, "pred.")
+    if bad_labels:
+        raise content_error("columns", len(bad_labels), "columns have an empty seed label or "
+                            "one containing a dot", [show_text(c) for c in bad_labels],
+                            hint="name them 'pred.<seed>' with a seed label without dots")
+    pred = {SINGLE_SEED_LABEL: "pred"} if single else {c[5:]: c for c in multi}
+    if task == "regression":
+        if not pred:
+            raise IngestError(422, "columns", f"columns: no prediction columns; {hint}",
+                              count=0, examples=[show_text(c) for c in names[:MAX_EXAMPLES]])
+        return _Layout(list(pred), pred, {})
+    assert classes is not None
+    class_set = {c: i for i, c in enumerate(classes)}
+    if not pred and not probs:
+        raise IngestError(422, "columns", f"columns: no prediction columns; {hint}",
+                          count=0, examples=[show_text(c) for c in names[:MAX_EXAMPLES]])
+    one_seed = single or (not multi and all(c[5:] in class_set for c in probs))
+    found: dict[str, dict[int, str]] = {}
+    bad_class: list[str] = []
+    malformed: list[str] = []
+    for column in probs:
+        rest = column[5:]
+        if one_seed:
+            seed, cls = SINGLE_SEED_LABEL, rest
+        else:
+            seed, dot, cls = rest.partition(".")
+            if not dot or not seed:
+                malformed.append(column)
+                continue
+        if cls not in class_set:
+            bad_class.append(column)
+            continue
+        found.setdefault(seed, {})[class_set[cls]] = column
+    if malformed:
+        raise content_error(
+            "columns", len(malformed), "probability columns are not named "
+            "'prob.<seed>.<class>'", [show_text(c) for c in malformed],
+            hint="with several seeds, name them prob.<seed>.<class>; with one, prob.<class>",
+        )
+    if bad_class:
+        raise content_error(
+            "columns", len(bad_class), "probability columns name a class this holdout "
+            "does not have", [show_text(c) for c in bad_class],
+        )
+    if pred and found:
+        no_prob = [pred[s] for s in pred if s not in found]
+        no_pred = [next(iter(found[s].values())) for s in found if s not in pred]
+        if no_prob or no_pred:
+            raise content_error(
+                "columns", len(no_prob) + len(no_pred),
+                "seeds have labels without probabilities or probabilities without labels",
+                [show_text(c) for c in no_prob + no_pred],
+                hint="send labels, probabilities, or both for every seed",
+            )
+    incomplete = [s for s, cols in found.items() if len(cols) != len(class_set)]
+    if incomplete:
+        examples = [f"seed {show_text(s)} has {len(found[s])} of {len(class_set)} class columns"
+                    for s in incomplete]
+        raise content_error(
+            "columns", len(incomplete), "seeds lack a probability column for some classes",
+            examples, hint="send one probability column per class of this holdout",
+        )
+    seeds = list(pred) if pred else list(found)
+    prob = {s: [found[s][i] for i in range(len(class_set))] for s in found}
+    return _Layout(seeds, pred, prob)
+
+
+def submission_from_table(
+    table: pa.Table, *, task: str, classes: Sequence[str] | None, limits: Limits
+) -> SubmissionArrays:
+    """A submission table (module docstring layout) as arrays in the order sent.
+
+    ``classes`` are the holdout's classes (canonical text, in the order probabilities are
+    returned); required for classification, ignored for regression.
+    """
+    check_task(task)
+    if task == "classification" and classes is None:
+        raise ValueError("classes are required for classification")
+    names = _check_columns(table, limits)
+    if ID_COLUMN not in names:
+        raise _missing_column(ID_COLUMN, names)
+    class_arr = class_array(classes) if task == "classification" and classes is not None \
+        else None
+    layout = _layout(names, task, classes)
+    k = len(layout.seeds)
+    if k > limits.max_seeds:
+        raise IngestError(
+            422, "columns", f"columns: {k} seeds, more than the limit of {limits.max_seeds}",
+            count=k,
+        )
+    ids = _ids(table, ID_COLUMN, limits)
+    n = table.num_rows
+    problems: list[IngestError] = []
+    predictions = labels = probabilities = None
+    if task == "regression":
+        predictions = np.empty((k, n), dtype=np.float64)
+        for s, seed in enumerate(layout.seeds):
+            column = layout.pred[seed]
+            try:
+                predictions[s] = floats_from_arrow(table.column(column), column, _row)
+            except IngestError as exc:
+                problems.append(exc)
+                continue
+            err = nonfinite_error(column, predictions[s], _row)
+            if err is not None:
+                problems.append(err)
+        raise_first(problems)
+        return SubmissionArrays(ids, predictions, None, None, list(layout.seeds))
+    assert class_arr is not None and classes is not None
+    if layout.pred:
+        labels = np.empty((k, n), dtype=np.intp)
+        for s, seed in enumerate(layout.seeds):
+            column = layout.pred[seed]
+            try:
+                text = text_from_arrow(table.column(column), column, _row, limits, labels=True,
+                                       noun="labels")
+            except IngestError as exc:
+                problems.append(exc)
+                continue
+            idx = pc.index_in(text, value_set=class_arr)
+            if idx.null_count:
+                pos = np.flatnonzero(idx.is_null().to_numpy(zero_copy_only=False))
+                tally = Tally()
+                original = table.column(column)
+                tally.add(pos, lambda i, c=original: f"{_row(i)} = {show_value(c[i].as_py())}")
+                problems.append(unknown_labels_error(column, tally))
+                continue
+            labels[s] = idx.to_numpy(zero_copy_only=False)
+    if layout.prob:
+        c = len(classes)
+        probabilities = np.empty((k, n, c), dtype=np.float64)
+        unreadable = len(problems)
+        for s, seed in enumerate(layout.seeds):
+            for j, column in enumerate(layout.prob[seed]):
+                try:
+                    probabilities[s, :, j] = floats_from_arrow(table.column(column), column, _row)
+                except IngestError as exc:
+                    problems.append(exc)
+        if len(problems) == unreadable:  # every probability column held numbers
+            seeds = layout.seeds
+
+            def locate_row(s: int, i: int) -> str:
+                return _row(i) if k == 1 else f"seed {show_text(seeds[s])} {_row(i)}"
+
+            def describe_class(s: int, j: int) -> str:
+                return f" {layout.prob[seeds[s]][j]}"
+
+            try:
+                check_probabilities("probabilities", probabilities, locate_row, describe_class)
+            except IngestError as exc:
+                problems.append(exc)
+    raise_first(problems)
+    return SubmissionArrays(ids, None, labels, probabilities, list(layout.seeds))
