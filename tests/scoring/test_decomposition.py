@@ -461,7 +461,10 @@ def test_brier_partition_binary(weighted: bool) -> None:
     ref = _murphy_reference(y, p, w)
     for name in ("reliability", "resolution", "uncertainty"):
         assert part[name] == approx(ref[name], rel=TIGHT), name
-    # Murphy (1973): brier = reliability - resolution + uncertainty, exactly
+    # Murphy (1973): brier = reliability - resolution + uncertainty, exactly; on the
+    # independently computed terms against sklearn's score, and on ours
+    independent = ref["reliability"] - ref["resolution"] + ref["uncertainty"]
+    assert brier_score_loss(y, p, sample_weight=w) == approx(independent, rel=TIGHT)
     brier = part["reliability"] - part["resolution"] + part["uncertainty"]
     assert part["brier"] == approx(brier, rel=TIGHT)
     # uncertainty is base rate * (1 - base rate) (Murphy 1973)
@@ -492,8 +495,11 @@ def test_brier_partition_multiclass(weighted: bool) -> None:
     ref = _murphy_reference(y, probs, w)
     for name in ("reliability", "resolution", "uncertainty"):
         assert part[name] == approx(ref[name], rel=TIGHT), name
+    # Murphy (1973), exact: on the independent terms against sklearn's score, and on ours
+    independent = ref["reliability"] - ref["resolution"] + ref["uncertainty"]
+    assert ref_brier == approx(independent, rel=TIGHT)
     brier = part["reliability"] - part["resolution"] + part["uncertainty"]
-    assert part["brier"] == approx(brier, rel=TIGHT)  # Murphy (1973), exact
+    assert part["brier"] == approx(brier, rel=TIGHT)
 
 
 def test_brier_partition_scaling_two_columns_is_twice_binary() -> None:
