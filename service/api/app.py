@@ -1,0 +1,49 @@
+"""The application factory."""
+
+from __future__ import annotations
+
+import logging
+import os
+from collections.abc import Mapping
+from typing import Any
+
+from flask import Flask
+
+from service.settings import load_settings
+from service.store import Store
+
+
+def create_app(config: Mapping[str, Any] | None = None) -> Flask:
+    """Build the Flask app: defaults, then ``HELDOUT_*`` variables, then ``config``.
+
+    ``config`` keys are the settings' keys without the prefix (``DATABASE_URL``) and any
+    Flask setting (``TESTING``). Nothing connects here: the store opens its engine on the
+    first request of each process.
+    """
+    app = Flask(__name__)
+    settings = load_settings(os.environ, config)
+    app.config.from_mapping(settings)
+    app.config["MAX_CONTENT_LENGTH"] = settings["MAX_BODY_BYTES"]
+    logging.getLogger("heldout").setLevel(settings["LOG_LEVEL"])
+
+    app.extensions["heldout_store"] = Store(
+        settings["DATABASE_URL"], label_cache_size=settings["LABEL_CACHE_SIZE"]
+    )
+
+    from . import docs, health, holdouts, submissions
+    from .errors import register_error_handlers
+
+    register_error_handlers(app)
+    for module in (health, holdouts, submissions, docs):
+        app.register_blueprint(module.bp)
+    return app
+
+
+def get_store(app: Flask) -> Store:
+    """The app's store (tests and the CLI use it outside a request)."""
+    store = app.extensions["heldout_store"]
+    assert isinstance(store, Store)
+    return store
+
+
+__all__ = ["create_app", "get_store"]

@@ -1,0 +1,253 @@
+"""Every error the API can answer with, mapped once to an RFC 9457 problem.
+
+Views never build error bodies: they raise. The tree::
+
+    ApiError                      (any status; ``status``, ``slug``, ``title`` per class)
+    +-- BadRequest                400  the request is malformed (not JSON, bad query value)
+    +-- Unauthorized              401  no token, or an unknown or revoked one
+    +-- Forbidden                 403  the token's role may not do this
+    +-- NotFound                  404  no such object, or not one the caller may see
+    +-- MethodNotAllowed          405
+    +-- NotAcceptable             406  no representation matches ``Accept``
+    +-- Conflict                  409  the request contradicts stored state
+    +-- PayloadTooLarge           413
+    +-- UnsupportedMediaType      415
+    +-- ValidationFailed          422  well-formed but wrong content; ``errors`` names each field
+    +-- ServiceUnavailable        503  the database cannot be reached
+
+Errors raised by other layers are mapped here too: ``service.ingest.IngestError`` keeps its
+own status and error list, ``service.scoring.ScoringInputError`` becomes 422, marshmallow's
+``ValidationError`` 422 with one entry per field, werkzeug's HTTP errors their status, and
+anything unexpected a 500 without internals. The body is always
+``{type, title, status, detail, errors}`` as ``application/problem+json``; ``type`` is a
+``tag:`` URI (RFC 9457 section 3.1.1: a stable identifier, not meant to be dereferenced).
+"""
+
+from __future__ import annotations
+
+import logging
+import traceback
+from collections.abc import Mapping
+from typing import Any
+
+import orjson
+from flask import Flask, Response
+from marshmallow import ValidationError
+from werkzeug.exceptions import HTTPException
+
+PROBLEM_MEDIA_TYPE = "application/problem+json"
+PROBLEM_TYPE_PREFIX = "tag:heldout,2025:problem/"
+
+log = logging.getLogger("heldout.api")
+
+
+def problem_error(
+    field: str, message: str, count: int = 0, examples: list[str] | None = None
+) -> dict[str, Any]:
+    """One entry of a problem's ``errors`` list (the same shape ingest errors use)."""
+    return {"field": field, "message": message, "count": count, "examples": examples or []}
+
+
+class ApiError(Exception):
+    """Base of every error the API answers with on purpose."""
+
+    status = 500
+    slug = "internal-error"
+    title = "Internal server error"
+
+    def __init__(
+        self,
+        detail: str,
+        errors: list[dict[str, Any]] | None = None,
+        headers: Mapping[str, str] | None = None,
+    ) -> None:
+        super().__init__(detail)
+        self.detail = detail
+        self.errors = errors or []
+        self.headers = dict(headers or {})
+
+
+class BadRequest(ApiError):
+    status, slug, title = 400, "malformed-request", "Malformed request"
+
+
+class Unauthorized(ApiError):
+    status, slug, title = 401, "unauthorized", "Authentication required"
+
+
+class Forbidden(ApiError):
+    status, slug, title = 403, "forbidden", "Not allowed for this role"
+
+
+class NotFound(ApiError):
+    status, slug, title = 404, "not-found", "Not found"
+
+
+class MethodNotAllowed(ApiError):
+    status, slug, title = 405, "method-not-allowed", "Method not allowed"
+
+
+class NotAcceptable(ApiError):
+    status, slug, title = 406, "not-acceptable", "No acceptable representation"
+
+
+class Conflict(ApiError):
+    status, slug, title = 409, "conflict", "Conflict with stored state"
+
+
+class PayloadTooLarge(ApiError):
+    status, slug, title = 413, "payload-too-large", "Request body too large"
+
+
+class UnsupportedMediaType(ApiError):
+    status, slug, title = 415, "unsupported-media-type", "Unsupported media type"
+
+
+class ValidationFailed(ApiError):
+    status, slug, title = 422, "invalid-content", "The request content is invalid"
+
+
+class ServiceUnavailable(ApiError):
+    status, slug, title = 503, "unavailable", "Service unavailable"
+
+
+_BY_STATUS: dict[int, type[ApiError]] = {
+    cls.status: cls
+    for cls in (
+        BadRequest,
+        Unauthorized,
+        Forbidden,
+        NotFound,
+        MethodNotAllowed,
+        NotAcceptable,
+        Conflict,
+        PayloadTooLarge,
+        UnsupportedMediaType,
+        ValidationFailed,
+        ServiceUnavailable,
+    )
+}
+
+PROBLEM_SLUGS: dict[int, str] = {status: cls.slug for status, cls in _BY_STATUS.items()}
+
+
+def problem_response(
+    status: int,
+    detail: str,
+    errors: list[dict[str, Any]] | None = None,
+    headers: Mapping[str, str] | None = None,
+) -> Response:
+    """The one place a problem body is written."""
+    cls = _BY_STATUS.get(status)
+    slug = cls.slug if cls else ApiError.slug
+    title = cls.title if cls else ApiError.title
+    if cls is None and status < 500:
+        slug, title = "client-error", "Client error"
+    body = {
+        "type": PROBLEM_TYPE_PREFIX + slug,
+        "title": title,
+        "status": status,
+        "detail": detail,
+        "errors": errors or [],
+    }
+    response = Response(orjson.dumps(body), status=status, mimetype=PROBLEM_MEDIA_TYPE)
+    for name, value in (headers or {}).items():
+        response.headers[name] = value
+    return response
+
+
+def flatten_messages(messages: Any, prefix: str = "") -> list[dict[str, Any]]:
+    """marshmallow's nested ``{field: [messages]}`` as one entry per field path."""
+    if isinstance(messages, Mapping):
+        out: list[dict[str, Any]] = []
+        for key, value in messages.items():
+            name = str(key) if key != "_schema" else (prefix.rstrip(".") or "body")
+            path = f"{prefix}{name}" if key != "_schema" else name
+            if isinstance(value, Mapping):
+                out.extend(flatten_messages(value, f"{path}."))
+            else:
+                out.extend(flatten_messages(value, path))
+        return out
+    if isinstance(messages, list) and all(isinstance(m, str) for m in messages):
+        return [problem_error(prefix or "body", " ".join(messages))]
+    if isinstance(messages, list):
+        out = []
+        for item in messages:
+            out.extend(flatten_messages(item, prefix))
+        return out
+    return [problem_error(prefix or "body", str(messages))]
+
+
+def _summary(errors: list[dict[str, Any]]) -> str:
+    fields = ", ".join(dict.fromkeys(e["field"] for e in errors))
+    return f"Fix these fields: {fields}." if fields else "The request content is invalid."
+
+
+def register_error_handlers(app: Flask) -> None:
+    """Map every exception the app can raise to a problem response, once."""
+    from service.ingest import IngestError
+    from service.scoring import ScoringInputError
+
+    @app.errorhandler(ApiError)
+    def _api_error(exc: ApiError) -> Response:
+        return problem_response(exc.status, exc.detail, exc.errors, exc.headers)
+
+    @app.errorhandler(IngestError)
+    def _ingest_error(exc: IngestError) -> Response:
+        return problem_response(exc.status, exc.message, exc.to_problem_errors())
+
+    @app.errorhandler(ScoringInputError)
+    def _scoring_error(exc: ScoringInputError) -> Response:
+        # The scoring core's field names are the request's ("predictions", "train_y_true");
+        # its examples are left out: y_true there would be the holdout's sealed labels.
+        return problem_response(422, str(exc), [problem_error(exc.field, exc.message)])
+
+    @app.errorhandler(ValidationError)
+    def _validation_error(exc: ValidationError) -> Response:
+        errors = flatten_messages(exc.messages)
+        return problem_response(422, _summary(errors), errors)
+
+    @app.errorhandler(HTTPException)
+    def _http_error(exc: HTTPException) -> Response:
+        status = exc.code or 500
+        headers = {}
+        if status == 405 and getattr(exc, "valid_methods", None):
+            headers["Allow"] = ", ".join(exc.valid_methods)
+        if status == 413:
+            detail = (
+                f"The request body is larger than the configured limit of "
+                f"{app.config['MAX_BODY_BYTES']} bytes (HELDOUT_MAX_BODY_BYTES)."
+            )
+        else:
+            detail = exc.description or exc.name
+        return problem_response(status, detail, headers=headers)
+
+    @app.errorhandler(Exception)
+    def _unexpected(exc: Exception) -> Response:
+        # Only the type and the frames: exception messages may quote request values.
+        frames = "".join(traceback.format_tb(exc.__traceback__))
+        log.error("unhandled %s\n%s", type(exc).__name__, frames)
+        return problem_response(500, "An internal error occurred; it has been logged.")
+
+
+__all__ = [
+    "PROBLEM_MEDIA_TYPE",
+    "PROBLEM_SLUGS",
+    "PROBLEM_TYPE_PREFIX",
+    "ApiError",
+    "BadRequest",
+    "Conflict",
+    "Forbidden",
+    "MethodNotAllowed",
+    "NotAcceptable",
+    "NotFound",
+    "PayloadTooLarge",
+    "ServiceUnavailable",
+    "Unauthorized",
+    "UnsupportedMediaType",
+    "ValidationFailed",
+    "flatten_messages",
+    "problem_error",
+    "problem_response",
+    "register_error_handlers",
+]

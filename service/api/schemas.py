@@ -1,0 +1,531 @@
+"""The wire format: one marshmallow schema per request body, query and response.
+
+The OpenAPI document is generated from these schemas, and every response body is dumped
+through its schema, so a field leaves the service only if a schema here declares it.
+Large arrays (ids, labels, predictions, probabilities) are ``JsonArray`` fields: the schema
+checks that they are arrays and documents their shape, and ``service.ingest`` converts and
+validates their elements without a Python-level pass per value in marshmallow.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from typing import Any
+
+from marshmallow import (
+    RAISE,
+    Schema,
+    ValidationError,
+    fields,
+    validate,
+    validates,
+    validates_schema,
+)
+
+GROUP_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$"
+_GROUP_RE = re.compile(GROUP_PATTERN)
+TASKS = ("regression", "binary", "multiclass")
+_CONTROL = re.compile(r"[\x00-\x1f\x7f]")
+
+
+def check_group_name(value: str) -> str:
+    """Raise ValueError unless ``value`` is a valid group name (letters, digits, ``._-``)."""
+    if not _GROUP_RE.match(value):
+        raise ValueError(
+            f"group {value!r} must be 1-64 characters: letters, digits, '.', '_' or '-', "
+            "starting with a letter or digit"
+        )
+    return value
+
+
+def _no_control_characters(value: str) -> None:
+    if _CONTROL.search(value):
+        raise ValidationError("Must not contain control characters.")
+
+
+class JsonArray(fields.Raw):
+    """A JSON array, passed through as parsed; its elements are checked by service.ingest."""
+
+    default_error_messages = {"invalid": "Must be a JSON array."}
+
+    def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> Any:
+        if not isinstance(value, list):
+            raise self.make_error("invalid")
+        return value
+
+
+class FiniteFloat(fields.Float):
+    """A float that must be finite (JSON has no NaN or infinity, but ``1e999`` parses as inf)."""
+
+    def _validated(self, value: Any) -> float:
+        number = super()._validated(value)
+        if number is None or not math.isfinite(number):
+            raise self.make_error("special")
+        return number
+
+    default_error_messages = {"special": "Must be a finite number."}
+
+
+def _name_field(description: str, **kwargs: Any) -> fields.String:
+    return fields.String(
+        validate=[validate.Length(min=1, max=200), _no_control_characters],
+        metadata={"description": description},
+        **kwargs,
+    )
+
+
+# --------------------------------------------------------------------------------- holdouts
+
+
+class HoldoutPolicy(Schema):
+    """How a holdout is scored and who may submit. Later versions add fields."""
+
+    class Meta:
+        unknown = RAISE
+
+    primary_metric = fields.String(
+        load_default=None,
+        allow_none=True,
+        metadata={
+            "description": "Metric that ranks standings; must suit the task (see the metric "
+            "catalog). Default: rmse for regression, accuracy for classification."
+        },
+    )
+    groups = fields.List(
+        fields.String(validate=validate.Regexp(GROUP_PATTERN)),
+        load_default=None,
+        allow_none=True,
+        metadata={"description": "Submitter groups allowed to submit; absent or null: all."},
+    )
+
+
+class HoldoutPolicyOut(Schema):
+    primary_metric = fields.String(required=True)
+    groups = fields.List(fields.String(), allow_none=True, required=True)
+
+
+class HoldoutCreate(Schema):
+    """Register a holdout from JSON."""
+
+    class Meta:
+        unknown = RAISE
+
+    name = _name_field(
+        "Unique per owner; registering the same name again is idempotent.", required=True
+    )
+    task = fields.String(required=True, validate=validate.OneOf(TASKS))
+    ids = JsonArray(
+        required=True,
+        metadata={
+            "description": "Row ids (strings, or integers read as their decimal text), unique.",
+            "items": {"type": ["string", "integer"]},
+        },
+    )
+    y_true = JsonArray(
+        required=True,
+        metadata={
+            "description": "One label per id, same order: numbers for regression, class names "
+            "(strings, or numbers read as their canonical text) for classification.",
+            "items": {"type": ["number", "string"]},
+        },
+    )
+    classes = fields.List(
+        fields.Raw(metadata={"type": ["string", "number"]}),
+        load_default=None,
+        allow_none=True,
+        metadata={
+            "description": "Classification: every class, in the order probabilities use. "
+            "Default: the distinct labels sorted (numerically if all are numbers). Binary: "
+            "the second class is the positive one."
+        },
+    )
+    policy = fields.Nested(HoldoutPolicy, load_default=None, allow_none=True)
+
+
+class HoldoutUploadFields(Schema):
+    """Registration metadata sent beside a CSV or Parquet table.
+
+    Multipart form fields, or query parameters when the table is the raw request body.
+    ``classes`` and ``policy`` are JSON text.
+    """
+
+    class Meta:
+        unknown = RAISE
+
+    name = _name_field("As in the JSON form.", required=True)
+    task = fields.String(required=True, validate=validate.OneOf(TASKS))
+    id_column = fields.String(load_default="id", validate=validate.Length(min=1, max=200))
+    target_column = fields.String(load_default="y_true", validate=validate.Length(min=1, max=200))
+    classes = fields.String(
+        load_default=None, metadata={"description": 'JSON array text, e.g. ["cat","dog"].'}
+    )
+    policy = fields.String(
+        load_default=None, metadata={"description": "JSON object text, as the JSON form."}
+    )
+
+
+class HoldoutMultipart(HoldoutUploadFields):
+    """Multipart form: the metadata fields and the table as ``file``."""
+
+    file = fields.Raw(
+        required=True,
+        metadata={
+            "type": "string",
+            "contentMediaType": "application/octet-stream",
+            "description": "The table: CSV (text/csv) or Parquet "
+            "(application/vnd.apache.parquet), told apart by the part's content type or the "
+            "file name's extension (.csv, .parquet).",
+        },
+    )
+
+
+class HoldoutOut(Schema):
+    id = fields.String(required=True)
+    name = fields.String(required=True)
+    task = fields.String(required=True)
+    n_rows = fields.Integer(required=True)
+    classes = fields.List(fields.String(), allow_none=True, required=True)
+    fingerprint = fields.String(
+        required=True,
+        metadata={
+            "description": "SHA-256 (hex) of a secret 32-byte salt followed by the canonical "
+            "encoding of ids and labels (README). The salt is revealed when the holdout closes."
+        },
+    )
+    policy = fields.Nested(HoldoutPolicyOut, required=True)
+    owner = fields.String(required=True, metadata={"description": "group:<name> or token:<id>"})
+    created_at = fields.DateTime(required=True)
+
+
+class HoldoutList(Schema):
+    holdouts = fields.List(fields.Nested(HoldoutOut), required=True)
+
+
+class HoldoutIds(Schema):
+    holdout_id = fields.String(required=True)
+    n_rows = fields.Integer(required=True)
+    order = fields.String(
+        required=True,
+        metadata={"description": "Always 'ascending': by Unicode code point, not registration."},
+    )
+    ids = fields.List(fields.String(), required=True)
+
+
+# ------------------------------------------------------------------------------ submissions
+
+
+class TrainPart(Schema):
+    """The model's own training rows, for the generalization gap and underfit flags."""
+
+    class Meta:
+        unknown = RAISE
+
+    y_true = JsonArray(required=True, metadata={"description": "Training targets (m,)."})
+    predictions = JsonArray(
+        load_default=None,
+        allow_none=True,
+        metadata={"description": "(m,) or (K, m): the same K seeds as the held-out predictions."},
+    )
+    probabilities = JsonArray(
+        load_default=None, allow_none=True, metadata={"description": "(m, C) or (K, m, C)."}
+    )
+
+
+class SweepSpec(Schema):
+    """Marks the submission as one point of a complexity sweep."""
+
+    class Meta:
+        unknown = RAISE
+
+    name = _name_field("The sweep's name, chosen by the group.", required=True)
+    complexity = FiniteFloat(
+        required=True,
+        metadata={"description": "Position on the complexity axis (depth, degree, 1/lambda)."},
+    )
+
+
+class SubmissionCreate(Schema):
+    """Predictions for every holdout row, from one model and one or more seeds."""
+
+    class Meta:
+        unknown = RAISE
+
+    model = _name_field("Model name, free text.", required=True)
+    ids = JsonArray(
+        required=True,
+        metadata={
+            "description": "Every holdout id exactly once, in any order.",
+            "items": {"type": ["string", "integer"]},
+        },
+    )
+    predictions = JsonArray(
+        load_default=None,
+        allow_none=True,
+        metadata={
+            "description": "One list of n values (one seed) or K lists of n. Regression: "
+            "numbers. Classification: class names. Optional for classification when "
+            "probabilities are given."
+        },
+    )
+    seeds = fields.List(
+        fields.String(validate=validate.Length(min=1, max=100)),
+        load_default=None,
+        allow_none=True,
+        metadata={"description": "K distinct seed labels; default '0', '1', ..."},
+    )
+    probabilities = JsonArray(
+        load_default=None,
+        allow_none=True,
+        metadata={"description": "(n, C) or (K, n, C), columns in the holdout's class order."},
+    )
+    train = fields.Nested(TrainPart, load_default=None, allow_none=True)
+    sweep = fields.Nested(SweepSpec, load_default=None, allow_none=True)
+
+    @validates("seeds")
+    def _distinct_seeds(self, value: list[str] | None, **_: Any) -> None:
+        if value is not None and len(set(value)) != len(value):
+            raise ValidationError("Seed labels must be distinct.")
+
+
+class SubmissionUploadQuery(Schema):
+    """Query parameters of a submission sent as a raw CSV or Parquet body."""
+
+    class Meta:
+        unknown = RAISE
+
+    model = _name_field("Model name, free text.", required=True)
+    sweep_name = _name_field("Sweep name (with sweep_complexity).", load_default=None)
+    sweep_complexity = FiniteFloat(load_default=None)
+
+    @validates_schema
+    def _sweep_together(self, data: dict[str, Any], **_: Any) -> None:
+        if (data.get("sweep_name") is None) != (data.get("sweep_complexity") is None):
+            raise ValidationError(
+                "Give sweep_name and sweep_complexity together, or neither.", "sweep_name"
+            )
+
+
+class SubmissionMultipart(SubmissionUploadQuery):
+    """Multipart form: the query fields as form fields and the table as ``file``."""
+
+    file = fields.Raw(
+        required=True,
+        metadata={
+            "type": "string",
+            "contentMediaType": "application/octet-stream",
+            "description": "CSV or Parquet table (content type or .csv/.parquet file name).",
+        },
+    )
+
+
+class IntervalOut(Schema):
+    low = fields.Float(allow_none=True, required=True)
+    high = fields.Float(allow_none=True, required=True)
+    level = fields.Float(required=True)
+    method = fields.String(required=True)
+    note = fields.String(required=True)
+
+
+class SpreadOut(Schema):
+    mean = fields.Float(allow_none=True, required=True)
+    sd = fields.Float(allow_none=True, required=True)
+    min = fields.Float(allow_none=True, required=True)
+    max = fields.Float(allow_none=True, required=True)
+
+
+class DecompositionOut(Schema):
+    loss = fields.String(required=True)
+    expected_loss = fields.Float(allow_none=True, required=True)
+    bias = fields.Float(allow_none=True, required=True)
+    variance = fields.Float(allow_none=True, required=True)
+    variance_share = fields.Float(allow_none=True, required=True)
+    ensemble_loss = fields.Float(allow_none=True, required=True)
+    noise = fields.Float(allow_none=True, required=True)
+    extra = fields.Dict(keys=fields.String(), values=fields.Float(allow_none=True), required=True)
+
+
+class FlagOut(Schema):
+    code = fields.String(required=True)
+    severity = fields.String(
+        required=True, validate=validate.OneOf(["info", "warning", "critical"])
+    )
+    message = fields.String(required=True)
+    evidence = fields.Dict(keys=fields.String(), required=True)
+
+
+class SweepSpecOut(Schema):
+    name = fields.String(required=True)
+    complexity = fields.Float(required=True)
+
+
+_SCORES = {"description": "Metric name to value; null where the metric is undefined."}
+
+
+class SubmissionResult(Schema):
+    """A scored submission: everything the scoring core reports, and nothing per row."""
+
+    id = fields.String(required=True)
+    holdout_id = fields.String(required=True)
+    group = fields.String(required=True)
+    model = fields.String(required=True)
+    task = fields.String(required=True)
+    n_rows = fields.Integer(required=True)
+    n_seeds = fields.Integer(required=True)
+    seeds = fields.List(fields.String(), required=True)
+    created_at = fields.DateTime(required=True)
+    primary_metric = fields.String(required=True)
+    primary_value = fields.Float(allow_none=True, required=True)
+    scores = fields.Dict(
+        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
+    )
+    intervals = fields.Dict(keys=fields.String(), values=fields.Nested(IntervalOut), required=True)
+    seed_spread = fields.Dict(keys=fields.String(), values=fields.Nested(SpreadOut), required=True)
+    ensemble = fields.Dict(
+        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
+    )
+    bias_variance = fields.Dict(
+        keys=fields.String(), values=fields.Nested(DecompositionOut), required=True
+    )
+    flags = fields.List(fields.Nested(FlagOut), required=True)
+    train_scores = fields.Dict(
+        keys=fields.String(),
+        values=fields.Float(allow_none=True),
+        allow_none=True,
+        required=True,
+    )
+    details = fields.Dict(
+        keys=fields.String(),
+        required=True,
+        metadata={
+            "description": "Structured results (classification: classes, per-class "
+            "metrics, confusion matrix)."
+        },
+    )
+    sweep = fields.Nested(SweepSpecOut, allow_none=True, required=True)
+    fingerprint = fields.String(
+        required=True, metadata={"description": "The holdout's fingerprint at scoring time."}
+    )
+
+
+class SubmissionSummary(Schema):
+    id = fields.String(required=True)
+    holdout_id = fields.String(required=True)
+    group = fields.String(required=True)
+    model = fields.String(required=True)
+    n_seeds = fields.Integer(required=True)
+    created_at = fields.DateTime(required=True)
+    primary_metric = fields.String(required=True)
+    primary_value = fields.Float(allow_none=True, required=True)
+    sweep = fields.Nested(SweepSpecOut, allow_none=True, required=True)
+
+
+class PageQuery(Schema):
+    class Meta:
+        unknown = RAISE
+
+    limit = fields.Integer(load_default=100, validate=validate.Range(min=1, max=1000))
+    offset = fields.Integer(load_default=0, validate=validate.Range(min=0))
+
+
+class SubmissionList(Schema):
+    submissions = fields.List(fields.Nested(SubmissionSummary), required=True)
+    total = fields.Integer(required=True)
+    limit = fields.Integer(required=True)
+    offset = fields.Integer(required=True)
+
+
+class StandingsEntry(Schema):
+    rank = fields.Integer(required=True, metadata={"description": "1 is best; ties share."})
+    group = fields.String(required=True)
+    value = fields.Float(allow_none=True, required=True)
+    interval = fields.Nested(IntervalOut, allow_none=True, required=True)
+    submission_id = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Shown to the holdout's owners and to the group itself."},
+    )
+    model = fields.String(allow_none=True, required=True)
+    n_submissions = fields.Integer(required=True)
+    created_at = fields.DateTime(required=True)
+
+
+class Standings(Schema):
+    holdout_id = fields.String(required=True)
+    primary_metric = fields.String(required=True)
+    higher_is_better = fields.Boolean(required=True)
+    entries = fields.List(fields.Nested(StandingsEntry), required=True)
+
+
+class SweepQuery(Schema):
+    class Meta:
+        unknown = RAISE
+
+    group = fields.String(
+        load_default=None,
+        validate=validate.Regexp(GROUP_PATTERN),
+        metadata={
+            "description": "Owners and admins: the group whose sweep to show (required "
+            "for them). Submitters always see their own group's."
+        },
+    )
+
+
+class SweepPointOut(Schema):
+    complexity = fields.Float(required=True)
+    test_loss = fields.Float(required=True)
+    test_loss_se = fields.Float(required=True)
+    train_loss = fields.Float(allow_none=True, required=True)
+    bias = fields.Float(required=True)
+    variance = fields.Float(required=True)
+    region = fields.String(
+        required=True, validate=validate.OneOf(["underfit", "optimal", "overfit", "neutral"])
+    )
+    submission_id = fields.String(required=True)
+    model = fields.String(required=True)
+
+
+class SweepOut(Schema):
+    holdout_id = fields.String(required=True)
+    group = fields.String(required=True)
+    name = fields.String(required=True)
+    loss = fields.String(required=True)
+    points = fields.List(fields.Nested(SweepPointOut), required=True)
+    best_complexity = fields.Float(required=True)
+    one_se_complexity = fields.Float(required=True)
+
+
+# ----------------------------------------------------------------------------------- health
+
+
+class Health(Schema):
+    status = fields.String(required=True)
+
+
+class Ready(Schema):
+    status = fields.String(required=True)
+    database = fields.String(required=True)
+
+
+# ---------------------------------------------------------------------------------- errors
+
+
+class ProblemError(Schema):
+    field = fields.String(required=True, metadata={"description": "Which input is wrong."})
+    message = fields.String(required=True)
+    count = fields.Integer(required=True, metadata={"description": "How many items; 0 if n/a."})
+    examples = fields.List(
+        fields.String(),
+        required=True,
+        metadata={"description": "Up to 10 offending values, from the caller's own input."},
+    )
+
+
+class Problem(Schema):
+    """RFC 9457 problem details."""
+
+    type = fields.String(required=True)
+    title = fields.String(required=True)
+    status = fields.Integer(required=True)
+    detail = fields.String(required=True)
+    errors = fields.List(fields.Nested(ProblemError), required=True)

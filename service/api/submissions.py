@@ -1,0 +1,321 @@
+"""Submissions: score and store, show, list, standings, complexity sweeps."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from flask import Blueprint, Response, current_app, url_for
+
+from service.scoring import ScoringInputError, catalog
+from service.scoring.sweep import SweepInput, complexity_sweep
+from service.store import HoldoutRecord, NewSubmission, SubmissionRecord
+
+from . import evaluate
+from .auth import current_principal, get_store, requires, visible_holdout, visible_submission
+from .bodies import (
+    CSV,
+    JSON,
+    MULTIPART,
+    PARQUET,
+    body_media_type,
+    json_envelope,
+    limits,
+    multipart_upload,
+    parse_table,
+    query_fields,
+    raw_body,
+)
+from .errors import NotFound, ValidationFailed, problem_error
+from .openapi import operation
+from .present import submission_out, summary_out
+from .responses import respond
+from .schemas import (
+    PageQuery,
+    Standings,
+    SubmissionCreate,
+    SubmissionList,
+    SubmissionMultipart,
+    SubmissionResult,
+    SubmissionUploadQuery,
+    SweepOut,
+    SweepQuery,
+)
+
+bp = Blueprint("submissions", __name__)
+
+_TABLE_BODY = {
+    "type": "string",
+    "description": "Columns: id; one seed: pred (and prob.<class>); K seeds: pred.<seed> "
+    "(and prob.<seed>.<class>).",
+}
+
+_SUBMIT_DESCRIPTION = """\
+Predictions for every row of the holdout, each id exactly once in any order.
+
+- `application/json`: `SubmissionCreate` (may be gzip with `Content-Encoding: gzip`);
+- a raw `text/csv` or `application/vnd.apache.parquet` table with the model name in the
+  query (`SubmissionUploadQuery`), or `multipart/form-data` with those fields and the table
+  as `file`. Training rows (`train`) can be sent in JSON only.
+
+The response holds every score the scoring core reports on the holdout, and never a label,
+a per-row loss or a per-row residual."""
+
+
+@bp.post("/v1/holdouts/<holdout_id>/submissions")
+@requires("submitter")
+@operation(
+    summary="Submit predictions and get them scored",
+    tag="submissions",
+    description=_SUBMIT_DESCRIPTION,
+    body={
+        JSON: SubmissionCreate,
+        MULTIPART: SubmissionMultipart,
+        CSV: _TABLE_BODY,
+        PARQUET: _TABLE_BODY,
+    },
+    query=SubmissionUploadQuery(partial=True),
+    response=(201, SubmissionResult),
+    errors=(400, 404, 413, 415, 422),
+)
+def create_submission(holdout_id: str) -> Response:
+    principal = current_principal()
+    holdout = visible_holdout(principal, holdout_id)
+    store = get_store()
+    arrays = store.holdout_arrays(holdout.id)
+    media = body_media_type()
+    lim = limits()
+    if media == JSON:
+        sub = evaluate.from_json(json_envelope(SubmissionCreate()), holdout, arrays, lim)
+    else:
+        if media == MULTIPART:
+            upload = multipart_upload(SubmissionUploadQuery())
+            fields, raw, table_type = upload.fields, upload.data, upload.media_type
+        else:
+            fields, raw, table_type = query_fields(SubmissionUploadQuery()), raw_body(), media
+        table = parse_table(raw, table_type, task=catalog.kind(holdout.task))
+        sub = evaluate.from_table(fields, table, holdout, arrays, lim)
+    result = evaluate.evaluate(holdout, arrays, sub, evaluate.options_from(current_app.config))
+    assert principal.group is not None
+    record = store.insert_submission(
+        NewSubmission(
+            holdout_id=holdout.id,
+            group=principal.group,
+            token_id=principal.token.id,
+            model=sub.model,
+            seeds=sub.seeds,
+            sweep_name=None if sub.sweep is None else sub.sweep[0],
+            sweep_complexity=None if sub.sweep is None else sub.sweep[1],
+            primary_metric=holdout.policy["primary_metric"],
+            primary_value=result.primary_value,
+            report=result.report,
+            row_loss=result.row_loss,
+            row_losses=result.row_losses,
+        )
+    )
+    location = url_for("submissions.get_submission", submission_id=record.id)
+    return respond(
+        SubmissionResult(), submission_out(record, holdout, principal), 201, {"Location": location}
+    )
+
+
+@bp.get("/v1/submissions/<submission_id>")
+@requires("admin", "owner", "submitter")
+@operation(
+    summary="Show a scored submission",
+    tag="submissions",
+    description="Submitters see their own group's submissions; owners those to their "
+    "holdouts; admins all.",
+    response=(200, SubmissionResult),
+    errors=(404,),
+)
+def get_submission(submission_id: str) -> Response:
+    principal = current_principal()
+    record, holdout = visible_submission(principal, submission_id)
+    return respond(SubmissionResult(), submission_out(record, holdout, principal))
+
+
+@bp.get("/v1/holdouts/<holdout_id>/submissions")
+@requires("admin", "owner", "submitter")
+@operation(
+    summary="List a holdout's submissions",
+    tag="submissions",
+    description="Submitters see their own group's; owners and admins every group's. Oldest "
+    "first, paged by limit and offset.",
+    query=PageQuery,
+    response=(200, SubmissionList),
+    errors=(404, 422),
+)
+def list_submissions(holdout_id: str) -> Response:
+    principal = current_principal()
+    holdout = visible_holdout(principal, holdout_id)
+    page = query_fields(PageQuery())
+    group = principal.group if principal.role == "submitter" else None
+    store = get_store()
+    records = store.list_submissions(
+        holdout.id, group=group, limit=page["limit"], offset=page["offset"]
+    )
+    return respond(
+        SubmissionList(),
+        {
+            "submissions": [summary_out(r) for r in records],
+            "total": store.count_submissions(holdout.id, group=group),
+            "limit": page["limit"],
+            "offset": page["offset"],
+        },
+    )
+
+
+def _best_per_group(records: list[SubmissionRecord], metric: str) -> list[dict[str, Any]]:
+    best: dict[str, SubmissionRecord] = {}
+    counts: dict[str, int] = {}
+    for r in records:  # oldest first: a later submission must be strictly better to win
+        counts[r.group] = counts.get(r.group, 0) + 1
+        current = best.get(r.group)
+        if current is None or catalog.ranking_key(metric, r.primary_value) < catalog.ranking_key(
+            metric, current.primary_value
+        ):
+            best[r.group] = r
+    ordered = sorted(
+        best.values(), key=lambda r: (catalog.ranking_key(metric, r.primary_value), r.created_at)
+    )
+    keys = [catalog.ranking_key(metric, r.primary_value) for r in ordered]
+    return [
+        {"rank": 1 + sum(k < keys[i] for k in keys), "record": r, "n_submissions": counts[r.group]}
+        for i, r in enumerate(ordered)
+    ]
+
+
+@bp.get("/v1/holdouts/<holdout_id>/standings")
+@requires("admin", "owner", "submitter")
+@operation(
+    summary="Best submission per group by the primary metric",
+    tag="submissions",
+    description="One entry per group that has submitted: its best submission by the "
+    "holdout's primary metric (the earliest among equals), ranked; equal values share a "
+    "rank, undefined values rank last. Submitters see every group's value and count, but "
+    "submission ids and model names of their own group only.",
+    response=(200, Standings),
+    errors=(404,),
+)
+def standings(holdout_id: str) -> Response:
+    principal = current_principal()
+    holdout = visible_holdout(principal, holdout_id)
+    store = get_store()
+    metric = holdout.policy["primary_metric"]
+    entries = []
+    for item in _best_per_group(store.list_submissions(holdout.id), metric):
+        record: SubmissionRecord = item["record"]
+        own = principal.role != "submitter" or record.group == principal.group
+        full = store.get_submission(record.id)
+        interval = (
+            None
+            if full is None or full.report is None
+            else (full.report.get("intervals", {}).get(metric))
+        )
+        entries.append(
+            {
+                "rank": item["rank"],
+                "group": record.group,
+                "value": record.primary_value,
+                "interval": interval,
+                "submission_id": record.id if own else None,
+                "model": record.model if own else None,
+                "n_submissions": item["n_submissions"],
+                "created_at": record.created_at,
+            }
+        )
+    return respond(
+        Standings(),
+        {
+            "holdout_id": holdout.id,
+            "primary_metric": metric,
+            "higher_is_better": catalog.METRICS[metric].higher_is_better,
+            "entries": entries,
+        },
+    )
+
+
+def _sweep_group(holdout: HoldoutRecord, requested: str | None, name: str) -> str:
+    principal = current_principal()
+    if principal.role == "submitter":
+        if requested is not None and requested != principal.group:
+            raise NotFound(f"No sweep {name!r} is visible to this token.")
+        assert principal.group is not None
+        return principal.group
+    if requested is None:
+        raise ValidationFailed(
+            "Owners and admins name the group whose sweep to show.",
+            [problem_error("group", "required for owner and admin tokens")],
+        )
+    return requested
+
+
+@bp.get("/v1/holdouts/<holdout_id>/sweeps/<name>")
+@requires("admin", "owner", "submitter")
+@operation(
+    summary="A group's complexity curve and the one-standard-error choice",
+    tag="submissions",
+    description="Built from the group's submissions whose sweep.name is `name`, one point "
+    "per complexity (the latest submission at a repeated complexity). Loss: the holdout's "
+    "stored per-row loss (squared error for regression; zero-one, log or Brier for "
+    "classification, following the primary metric). Needs at least two holdout rows.",
+    query=SweepQuery,
+    response=(200, SweepOut),
+    errors=(404, 422),
+)
+def sweep(holdout_id: str, name: str) -> Response:
+    principal = current_principal()
+    holdout = visible_holdout(principal, holdout_id)
+    query = query_fields(SweepQuery())
+    group = _sweep_group(holdout, query["group"], name)
+    members = get_store().sweep_members(holdout.id, group, name)
+    if not members:
+        raise NotFound(f"Group {group!r} has no sweep named {name!r} on this holdout.")
+    latest = {}
+    for m in members:  # oldest first, so the latest at each complexity wins
+        latest[m.submission.sweep_complexity] = m
+    row_loss = members[-1].row_loss
+    spec = catalog.ROW_LOSSES[row_loss]
+    points = []
+    for m in latest.values():
+        report = m.submission.report or {}
+        decomposition = report["bias_variance"][spec.decomposition]
+        points.append(
+            SweepInput(
+                complexity=float(m.submission.sweep_complexity),
+                test_row_losses=m.row_losses,
+                bias=_number(decomposition["bias"]),
+                variance=_number(decomposition["variance"]),
+                train_loss=catalog.train_loss(row_loss, report.get("train_scores")),
+            )
+        )
+    try:
+        result = complexity_sweep(points, loss=row_loss)
+    except ScoringInputError as exc:
+        raise ValidationFailed(
+            "This sweep cannot be summarized.", [problem_error(exc.field, exc.message)]
+        ) from None
+    by_complexity = {float(c): m.submission for c, m in latest.items()}
+    return respond(
+        SweepOut(),
+        {
+            "holdout_id": holdout.id,
+            "group": group,
+            "name": name,
+            "loss": result.loss,
+            "points": [
+                {
+                    **point.__dict__,
+                    "submission_id": by_complexity[point.complexity].id,
+                    "model": by_complexity[point.complexity].model,
+                }
+                for point in result.points
+            ],
+            "best_complexity": result.best_complexity,
+            "one_se_complexity": result.one_se_complexity,
+        },
+    )
+
+
+def _number(value: Any) -> float:
+    return float("nan") if value is None else float(value)
