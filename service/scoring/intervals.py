@@ -363,7 +363,7 @@ def order_statistic_interval(
         found = select_order_statistics(values.astype(np.float64, copy=True), ranks)
         return Interval(found[ranks[0]], found[ranks[1]], level, "order_statistic")
     wsum = float(weights.sum())
-    n_eff = wsum * wsum / float(np.dot(weights, weights))
+    n_eff = wsum * wsum / float(np.einsum("i,i->", weights, weights))
     half = z_value(level) * math.sqrt(quantile * (1.0 - quantile) / n_eff)
     if quantile - half <= 0.0 or quantile + half >= 1.0:
         return no_interval(level, f"too few rows for a {level:g} order-statistic interval")

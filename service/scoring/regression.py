@@ -385,7 +385,7 @@ def _weighted_median(
     if level is None:
         return value, math.nan, math.nan
     wsum = float(cdf[-1])
-    n_eff = wsum * wsum / float(np.dot(w, w))
+    n_eff = wsum * wsum / float(np.einsum("i,i->", w, w))
     half = z_value(level) * math.sqrt(0.25 / n_eff)
     if half >= 0.5:
         return value, math.nan, math.nan
@@ -534,8 +534,9 @@ def ensemble_prediction(predictions: ArrayLike) -> NDArray[np.float64]:
     seeds by exactly the variance term).
     """
     p = np.asarray(predictions, dtype=np.float64)
-    p = as_seed_predictions(p, p.shape[-1] if p.ndim else -1)
-    return p.mean(axis=0)
+    if p.ndim not in (1, 2):
+        raise ScoringInputError("predictions", f"expected shape (n,) or (K, n), got {p.shape}")
+    return as_seed_predictions(p, p.shape[-1]).mean(axis=0)
 
 
 def _spread(values: NDArray[np.float64]) -> Spread:

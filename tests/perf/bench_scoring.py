@@ -1,9 +1,13 @@
 """Benchmark: ``regression_report`` against sklearn.metrics and against a numpy floor.
 
-Run: ``.venv/bin/python tests/perf/bench_scoring.py [n] [k] [repeats]`` (defaults 1e6, 10, 7).
+Run: ``.venv/bin/python tests/perf/bench_scoring.py [n] [k] [repeats]`` (defaults 1e6, 10, 9).
 The last line printed is a JSON object. All timings are taken in one run, interleaved round
 by round (so a busy neighbour slows every candidate alike), and each figure is the median of
-its rounds.
+its rounds, in wall time (``*_cpu`` keys: this process's CPU time, steadier when the machine
+is shared). OpenBLAS is limited to one thread for every candidate (threadpoolctl), as in
+``bench_binary.py`` and as a service with one worker per core runs; the report's time with
+the default BLAS threads is given too (``report_seconds_blas_default``), because a BLAS
+call on a busy 2-core machine can stall on its second thread.
 
 - ``regression_speedup_vs_sklearn``: sklearn's time for the eight metrics per seed plus the
   same eight on the seed-averaged prediction (what ``scores`` and ``ensemble`` hold), divided
@@ -35,6 +39,7 @@ from typing import Any
 import numpy as np
 from scipy import optimize, stats
 from sklearn import metrics
+from threadpoolctl import threadpool_limits
 
 from service.scoring._checks import as_seed_predictions
 from service.scoring.options import ScoringOptions
@@ -106,20 +111,24 @@ def _floor_buffer(y: np.ndarray, preds: np.ndarray) -> None:
             r[: n // 2].max()
 
 
-def _interleaved(candidates: dict[str, Callable[[], Any]], rounds: dict[str, int]) -> dict:
-    """Run each candidate once per round, in turn; return every timing per candidate."""
-    times: dict[str, list[float]] = {name: [] for name in candidates}
+def _interleaved(
+    candidates: dict[str, Callable[[], Any]], rounds: dict[str, int]
+) -> tuple[dict[str, list[float]], dict[str, list[float]]]:
+    """Run each candidate once per round, in turn; return (wall, CPU) timings per candidate."""
+    wall: dict[str, list[float]] = {name: [] for name in candidates}
+    cpu: dict[str, list[float]] = {name: [] for name in candidates}
     for r in range(max(rounds.values())):
         for name, fn in candidates.items():
             if r >= rounds[name]:
                 continue
-            start = time.perf_counter()
+            start, start_cpu = time.perf_counter(), time.process_time()
             fn()
-            times[name].append(time.perf_counter() - start)
-    return times
+            wall[name].append(time.perf_counter() - start)
+            cpu[name].append(time.process_time() - start_cpu)
+    return wall, cpu
 
 
-def measure_regression(n: int = 1_000_000, k: int = 10, repeats: int = 7) -> dict[str, Any]:
+def measure_regression(n: int = 1_000_000, k: int = 10, repeats: int = 9) -> dict[str, Any]:
     y, preds = _data(n, k)
     options = ScoringOptions()
     kw = dict(
@@ -149,10 +158,15 @@ def measure_regression(n: int = 1_000_000, k: int = 10, repeats: int = 7) -> dic
     rounds = {name: repeats for name in candidates}
     rounds["sklearn"] = max(3, repeats // 2)
     load_before = os.getloadavg()
-    times = _interleaved(candidates, rounds)
+    with threadpool_limits(limits=1, user_api="blas"):
+        times, cpu_times = _interleaved(candidates, rounds)
+    default_blas, _ = _interleaved({"report": candidates["report"]}, {"report": 3})
     load_after = os.getloadavg()
     med = {name: float(np.median(t)) for name, t in times.items()}
+    low = {name: float(np.min(t)) for name, t in times.items()}
+    cpu = {name: float(np.median(t)) for name, t in cpu_times.items()}
     floor = min(med["floor_matrix"], med["floor_buffer"])
+    floor_cpu = min(cpu["floor_matrix"], cpu["floor_buffer"])
 
     report = regression_report(y, preds)
     reference = _sklearn_regression(y, preds)
@@ -170,7 +184,10 @@ def measure_regression(n: int = 1_000_000, k: int = 10, repeats: int = 7) -> dic
         "k": k,
         "repeats": repeats,
         "seconds_median": med,
+        "seconds_min": low,
+        "cpu_seconds_median": cpu,
         "seconds_all_runs": times,
+        "report_seconds_blas_default": float(np.median(default_blas["report"])),
         "floor_seconds": floor,
         "sklearn_seconds_per_seed": med["sklearn"] / (k + 1),
         "regression_speedup_vs_sklearn": med["sklearn"] / med["report"],
@@ -178,10 +195,14 @@ def measure_regression(n: int = 1_000_000, k: int = 10, repeats: int = 7) -> dic
         "regression_ratio_to_floor_without_intervals": med["report_without_intervals"] / floor,
         "interval_overhead_share": (med["report"] - med["report_without_intervals"])
         / med["report_without_intervals"],
-        "share_of_report": {
-            "validation_as_seed_predictions": med["validation_as_seed_predictions"]
-            / med["report"],
-            "decomposition_squared_loss": med["decomposition_squared_loss"] / med["report"],
+        "regression_speedup_vs_sklearn_cpu": cpu["sklearn"] / cpu["report"],
+        "regression_ratio_to_floor_cpu": cpu["report"] / floor_cpu,
+        "interval_overhead_share_cpu": (cpu["report"] - cpu["report_without_intervals"])
+        / cpu["report_without_intervals"],
+        "share_of_report_cpu": {
+            "validation_as_seed_predictions": cpu["validation_as_seed_predictions"]
+            / cpu["report"],
+            "decomposition_squared_loss": cpu["decomposition_squared_loss"] / cpu["report"],
         },
         "max_relative_difference_vs_sklearn": worst,
         "load_average_before_after": [load_before[0], load_after[0]],

@@ -15,6 +15,7 @@ from sklearn.exceptions import UndefinedMetricWarning
 from statsmodels.stats.weightstats import DescrStatsW
 
 from service.scoring import ScoringInputError, ScoringOptions, to_jsonable
+from service.scoring.intervals import order_statistic_interval
 from service.scoring.regression import (
     MAPE_EPSILON,
     METRICS,
@@ -301,6 +302,8 @@ def test_row_losses_and_ensemble_prediction() -> None:
     assert rows.mean() == pytest.approx(np.mean(per_seed), rel=1e-13)
     np.testing.assert_array_equal(ensemble_prediction(preds), preds.mean(axis=0))
     np.testing.assert_array_equal(ensemble_prediction(preds[0]), preds[0])
+    with pytest.raises(ScoringInputError, match="predictions"):
+        ensemble_prediction(np.ones((2, 3, 4)))
 
 
 # ------------------------------------------------------------------------------ report
@@ -404,7 +407,21 @@ def test_weighted_report_matches_sklearn() -> None:
         expected = np.mean([sklearn_value(name, y, p, w) for p in preds])
         assert report.scores[name] == pytest.approx(expected, rel=RTOL), name
     assert any("positive weight" in note for note in report.details["notes"])
-    assert report.intervals["median_absolute_error"].method == "seed_mean_conservative"
+    iv = report.intervals["median_absolute_error"]
+    assert iv.method == "seed_mean_conservative"
+    # each seed's Woodruff interval, as order_statistic_interval computes it (that helper is
+    # checked against numpy's inverted-CDF quantile of repeated rows in test_intervals.py)
+    per_seed = [order_statistic_interval(np.abs(p - y), 0.5, w, level=0.95) for p in preds]
+    assert iv.low == pytest.approx(np.mean([s.low for s in per_seed]), rel=1e-15)
+    assert iv.high == pytest.approx(np.mean([s.high for s in per_seed]), rel=1e-15)
+    # the weighted normal intervals use Kish's effective n
+    # reference: statsmodels DescrStatsW with weights rescaled to sum to Kish's n
+    rows = ((preds - y) ** 2).mean(axis=0)
+    n_eff = w.sum() ** 2 / (w**2).sum()
+    ref = DescrStatsW(rows, weights=w * n_eff / w.sum()).zconfint_mean(alpha=0.05)
+    assert (report.intervals["mse"].low, report.intervals["mse"].high) == pytest.approx(
+        ref, rel=1e-12
+    )
 
 
 # ------------------------------------------------------------------------------ report intervals
