@@ -505,8 +505,8 @@ def regression_metrics(
     y = as_targets(y_true)
     p = as_seed_predictions(predictions, y.size)
     w = as_weights(sample_weight, y.size)
-    ts = _target_stats(y, w)
-    with np.errstate(over="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", invalid="ignore"):  # overflowing residuals give inf
+        ts = _target_stats(y, w)
         res = _fused_pass(ts, p)
         return _metrics_from_pass(ts, res, _rows_of(p, res))
 
@@ -519,8 +519,8 @@ def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[
     """
     y = as_targets(y_true)
     p = as_seed_predictions(predictions, y.size)
-    ts = _target_stats(y, None)
     with np.errstate(over="ignore", invalid="ignore"):
+        ts = _target_stats(y, None)
         res = _fused_pass(ts, p, median=False, row_squared=True)
     rows = res.row_squared
     assert rows is not None
@@ -613,7 +613,35 @@ def _regression_report(
     options: ScoringOptions,
     with_intervals: bool,
 ) -> Report:
-    """``regression_report`` with a switch to leave out the intervals (for the benchmark)."""
+    """``regression_report`` with a switch to leave out the intervals (for the benchmark).
+
+    Residuals too large for float64 give infinite metrics (as in scikit-learn) without
+    floating-point warnings.
+    """
+    with np.errstate(over="ignore", invalid="ignore"):
+        return _report(
+            y_true,
+            predictions,
+            sample_weight=sample_weight,
+            train_y_true=train_y_true,
+            train_predictions=train_predictions,
+            noise_variance=noise_variance,
+            options=options,
+            with_intervals=with_intervals,
+        )
+
+
+def _report(
+    y_true: ArrayLike,
+    predictions: ArrayLike,
+    *,
+    sample_weight: ArrayLike | None,
+    train_y_true: ArrayLike | None,
+    train_predictions: ArrayLike | None,
+    noise_variance: float | None,
+    options: ScoringOptions,
+    with_intervals: bool,
+) -> Report:
     from .decomposition import squared_loss_decomposition
     from .flags import overfitting_flags
 
@@ -637,6 +665,12 @@ def _regression_report(
             row_squared=True,
             row_absolute=with_intervals,
         )
+        if not np.isfinite(res.sum_squared).all():
+            raise ScoringInputError(
+                "predictions",
+                "squared errors overflow float64: some predictions and targets differ by "
+                "more than about 1e154; rescale the targets",
+            )
         rows = _rows_of(p, res)
         per_seed = _metrics_from_pass(ts, res, rows, slice(0, n_seeds))
         ensemble = {
@@ -655,6 +689,12 @@ def _regression_report(
             tp = as_seed_predictions(train_predictions, ty.size, name="train_predictions")
             tts = _target_stats(ty, None)
             tres = _fused_pass(tts, tp, row_squared=True)
+            if not np.isfinite(tres.sum_squared).all():
+                raise ScoringInputError(
+                    "train_predictions",
+                    "squared errors overflow float64: some predictions and targets differ by "
+                    "more than about 1e154; rescale the targets",
+                )
             train_scores = _headline(_metrics_from_pass(tts, tres, _rows_of(tp, tres)))
             assert tres.row_squared is not None
             train_row_losses = np.divide(tres.row_squared, tp.shape[0], out=tres.row_squared)

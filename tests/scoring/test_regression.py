@@ -253,6 +253,18 @@ def test_bad_input_names_the_field(args, field: str) -> None:
     assert err.value.field == field
 
 
+def test_overflowing_errors_are_inf_in_metrics_and_an_error_in_the_report() -> None:
+    y = np.array([1e200, -1e200, 3.0, 4.0])
+    preds = np.array([[-1e200, 1e200, 3.0, 4.0]])
+    got = regression_metrics(y, preds)  # no floating-point warning (they are errors here)
+    assert got["mse"][0] == math.inf
+    with np.errstate(over="ignore"):  # sklearn warns on the overflow
+        assert skm.mean_squared_error(y, preds[0]) == math.inf  # reference: sklearn
+    with pytest.raises(ScoringInputError, match="overflow") as err:
+        regression_report(y, preds)
+    assert err.value.field == "predictions"
+
+
 def test_bad_weights_and_half_a_training_set_are_rejected() -> None:
     with pytest.raises(ScoringInputError, match="sample_weight"):
         regression_metrics(np.ones(3), np.ones(3), sample_weight=np.array([1.0, -1.0, 1.0]))
