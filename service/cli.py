@@ -58,6 +58,9 @@ def _tokens_create(args: argparse.Namespace) -> int:
         except ValueError as exc:
             print(f"heldout: {exc}", file=sys.stderr)
             return 2
+    if args.label is not None and len(args.label) > 200:
+        print("heldout: --label has at most 200 characters", file=sys.stderr)
+        return 2
     store = _store(args)
     try:
         store.init_schema()

@@ -24,7 +24,13 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     settings = load_settings(os.environ, config)
     app.config.from_mapping(settings)
     app.config["MAX_CONTENT_LENGTH"] = settings["MAX_BODY_BYTES"]
-    logging.getLogger("heldout").setLevel(settings["LOG_LEVEL"])
+    logger = logging.getLogger("heldout")
+    logger.setLevel(settings["LOG_LEVEL"])
+    gunicorn_errors = logging.getLogger("gunicorn.error")
+    if gunicorn_errors.handlers and not logger.handlers:
+        # Under gunicorn, the service's log lines go to gunicorn's error log.
+        logger.handlers = list(gunicorn_errors.handlers)
+        logger.propagate = False
 
     app.extensions["heldout_store"] = Store(
         settings["DATABASE_URL"], label_cache_size=settings["LABEL_CACHE_SIZE"]

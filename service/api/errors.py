@@ -33,7 +33,11 @@ from typing import Any
 import orjson
 from flask import Flask, Response
 from marshmallow import ValidationError
+from sqlalchemy.exc import OperationalError
 from werkzeug.exceptions import HTTPException
+
+from service.ingest import IngestError
+from service.scoring import ScoringInputError
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 PROBLEM_TYPE_PREFIX = "tag:heldout,2025:problem/"
@@ -183,10 +187,18 @@ def _summary(errors: list[dict[str, Any]]) -> str:
     return f"Fix these fields: {fields}." if fields else "The request content is invalid."
 
 
+# The scoring core names its parameters; a problem names the request's fields.
+_REQUEST_FIELDS = {
+    "labels": "predictions",
+    "train_y_true": "train.y_true",
+    "train_predictions": "train.predictions",
+    "train_labels": "train.predictions",
+    "train_probabilities": "train.probabilities",
+}
+
+
 def register_error_handlers(app: Flask) -> None:
     """Map every exception the app can raise to a problem response, once."""
-    from service.ingest import IngestError
-    from service.scoring import ScoringInputError
 
     @app.errorhandler(ApiError)
     def _api_error(exc: ApiError) -> Response:
@@ -198,9 +210,16 @@ def register_error_handlers(app: Flask) -> None:
 
     @app.errorhandler(ScoringInputError)
     def _scoring_error(exc: ScoringInputError) -> Response:
-        # The scoring core's field names are the request's ("predictions", "train_y_true");
-        # its examples are left out: y_true there would be the holdout's sealed labels.
-        return problem_response(422, str(exc), [problem_error(exc.field, exc.message)])
+        # Examples are left out: for y_true they would be the holdout's sealed labels.
+        field = _REQUEST_FIELDS.get(exc.field, exc.field)
+        return problem_response(422, f"{field}: {exc.message}", [problem_error(field, exc.message)])
+
+    @app.errorhandler(OperationalError)
+    def _database_down(exc: OperationalError) -> Response:
+        log.error("database unavailable: %s", type(exc.orig).__name__)
+        return problem_response(
+            503, "The database cannot be reached; retry later.", headers={"Retry-After": "5"}
+        )
 
     @app.errorhandler(ValidationError)
     def _validation_error(exc: ValidationError) -> Response:

@@ -71,15 +71,16 @@ def operation(
     body: Mapping[str, Any] | None = None,
     query: type[schemas.Schema] | None = None,
     response: tuple[int, Any] = (200, None),
-    alternatives: Mapping[int, Any] | None = None,
+    alternatives: Mapping[int, tuple[str, Any]] | None = None,
     errors: tuple[int, ...] = (),
 ) -> Callable[[F], F]:
     """Attach the OpenAPI description of one view.
 
     ``body`` maps media types to a schema class (or a raw schema dict); ``response`` is the
     success status and its schema class, or a mapping of media type to schema for content
-    negotiation; ``alternatives`` other success statuses (e.g. 200 for an idempotent
-    repeat); ``errors`` the problem statuses besides 401/403 that ``requires`` implies.
+    negotiation; ``alternatives`` other success statuses as (description, schema), e.g.
+    200 for an idempotent repeat; ``errors`` the problem statuses besides the 401/403 that
+    ``requires`` implies.
     """
 
     def decorate(view: F) -> F:

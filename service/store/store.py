@@ -237,7 +237,7 @@ class Store:
                 if self._engine is not None:
                     # Inherited from the parent: drop its pool without closing its sockets.
                     self._engine.dispose(close=False)
-                    self._cache.clear()
+                self._cache.clear()
                 self._engine = make_engine(self.url)
                 self._pid = pid
             return self._engine
@@ -269,6 +269,8 @@ class Store:
             raise ValueError(f"role must be one of {', '.join(ROLES)}; got {role!r}")
         if role == "submitter" and not group:
             raise ValueError("a submitter token needs a group")
+        if label is not None and len(label) > 200:
+            raise ValueError(f"a label has at most 200 characters, got {len(label)}")
         secret = new_token_secret()
         record = TokenRecord(_new_id("tok_"), role, group or None, label or None, _now(), None)
         with self.engine.begin() as conn:
@@ -411,14 +413,14 @@ class Store:
 
     def holdout_arrays(self, holdout_id: str) -> HoldoutArrays:
         """The sealed ids, labels and salt of a holdout (decoded once per process)."""
-        self.engine  # noqa: B018 -- re-creates the engine and clears the cache after a fork
+        engine = self.engine  # after a fork this also empties the inherited cache
         with self._lock:
             cached = self._cache.get(holdout_id)
             if cached is not None:
                 self._cache.move_to_end(holdout_id)
                 return cached
         d = schema.holdout_data
-        with self.engine.connect() as conn:
+        with engine.connect() as conn:
             row = conn.execute(sa.select(d).where(d.c.holdout_id == holdout_id)).first()
         if row is None:
             raise KeyError(holdout_id)

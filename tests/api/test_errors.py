@@ -86,3 +86,7 @@ def test_readiness_reports_an_unreachable_database(tmp_path: Any) -> None:
     assert client.get("/healthz").status_code == 200
     body = _problem(client.get("/readyz"), 503)
     assert "missing" not in body["detail"]
+    # Any request that needs the database: 503 with Retry-After, no driver message.
+    r = client.get("/v1/holdouts", headers={"Authorization": "Bearer hdt_x"})
+    body = _problem(r, 503)
+    assert r.headers["Retry-After"] == "5" and "sqlite" not in body["detail"].lower()

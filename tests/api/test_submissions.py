@@ -243,7 +243,7 @@ def _problem_fields(r: Any) -> list[str]:
         (lambda b: {**b, "predictions": [[*p[:-1], "x"] for p in b["predictions"]]}, "predictions"),
         (lambda b: {**b, "train": {"y_true": [1.0, 2.0]}}, "train.predictions"),
         (
-            lambda b: {**b, "train": {"y_true": [1.0, 2.0], "predictions": [1.0, 2.5]}},
+            lambda b: {**b, "train": {"y_true": [1.0, 2.0], "predictions": [1.0, 2.5, 3.0]}},
             "train.predictions",
         ),
         (lambda b: {**b, "sweep": {"name": "x"}}, "sweep.complexity"),
