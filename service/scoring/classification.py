@@ -82,7 +82,6 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -111,9 +110,11 @@ __all__ = [
     "COUNT_METRICS",
     "ECE_BINS",
     "LOWER_IS_BETTER",
+    "PROBABILITY_METRICS",
     "classification_report",
     "classification_row_losses",
     "confusion_matrices",
+    "count_bootstrap_intervals",
     "expected_calibration_error",
     "metrics_from_confusion",
     "predicted_labels",
@@ -146,6 +147,7 @@ COUNT_METRICS = (
 only for binary tasks)."""
 
 PROBABILITY_METRICS = ("log_loss", "brier", "roc_auc", "average_precision", "ece")
+"""Metrics that need class probabilities."""
 
 _BINARY_ONLY = frozenset({"precision", "recall", "f1"})
 
@@ -186,12 +188,6 @@ class _Inputs:
     @property
     def binary(self) -> bool:
         return self.n_classes == 2
-
-    @cached_property
-    def positive_probability(self) -> NDArray[np.float64]:
-        """(K, n) contiguous probability of class 1 (binary tasks with probabilities)."""
-        assert self.probabilities is not None
-        return np.ascontiguousarray(self.probabilities[..., 1])
 
 
 def _check_n_classes(n_classes: int) -> int:
@@ -311,18 +307,22 @@ def _confusion(
     """
     n_seeds, n = labels.shape
     cc = n_classes * n_classes
-    index = labels + (y * n_classes)
-    index += (np.arange(n_seeds, dtype=np.intp) * cc)[:, np.newaxis]
-    flat = index.reshape(-1)
-    counts = np.bincount(flat, minlength=n_seeds * cc).astype(np.int64, copy=False)
-    counts = counts.reshape(n_seeds, n_classes, n_classes)
-    if weights is None:
-        return counts, None, None
-    w_rep = np.broadcast_to(weights, (n_seeds, n)).reshape(-1)
-    weighted = np.bincount(flat, weights=w_rep, minlength=n_seeds * cc)
-    squared = np.bincount(flat, weights=w_rep * w_rep, minlength=n_seeds * cc)
+    base = y * n_classes
+    index = np.empty(n, dtype=np.intp)  # one n-long buffer, reused for every seed
+    counts = np.empty((n_seeds, cc), dtype=np.int64)
+    weighted = None if weights is None else np.empty((n_seeds, cc))
+    squared = None if weights is None else np.empty((n_seeds, cc))
+    w_sq = None if weights is None else weights * weights
+    for k in range(n_seeds):
+        np.add(base, labels[k], out=index)
+        counts[k] = np.bincount(index, minlength=cc)
+        if weighted is not None and squared is not None:
+            weighted[k] = np.bincount(index, weights=weights, minlength=cc)
+            squared[k] = np.bincount(index, weights=w_sq, minlength=cc)
     shape = (n_seeds, n_classes, n_classes)
-    return counts, weighted.reshape(shape), squared.reshape(shape)
+    if weighted is None or squared is None:
+        return counts.reshape(shape), None, None
+    return counts.reshape(shape), weighted.reshape(shape), squared.reshape(shape)
 
 
 def confusion_matrices(
@@ -446,14 +446,15 @@ def _row_mean(values: NDArray[np.float64], weights: NDArray[np.float64] | None) 
 
 
 def _true_class_probability(y: NDArray[np.intp], probs: NDArray[np.float64]) -> NDArray:
-    """(K, n) probability each seed gives the true class."""
+    """(..., n) probability given to the true class, from (..., n, C) probabilities."""
     if probs.shape[-1] == 2:
         return np.where(y == 1, probs[..., 1], probs[..., 0])
-    return np.take_along_axis(probs, y[np.newaxis, :, np.newaxis], axis=2)[..., 0]
+    index = y.reshape((1,) * (probs.ndim - 2) + (-1, 1))
+    return np.take_along_axis(probs, index, axis=-1)[..., 0]
 
 
 def _row_log_losses(y: NDArray[np.intp], probs: NDArray[np.float64]) -> NDArray[np.float64]:
-    """(K, n) log loss of each seed on each row, clipped as sklearn clips."""
+    """(..., n) log loss on each row, clipped as sklearn clips, from (..., n, C)."""
     true_p = _true_class_probability(y, probs)
     np.clip(true_p, _EPS, 1.0 - _EPS, out=true_p)
     np.log(true_p, out=true_p)
@@ -462,13 +463,14 @@ def _row_log_losses(y: NDArray[np.intp], probs: NDArray[np.float64]) -> NDArray[
 
 
 def _row_brier(y: NDArray[np.intp], probs: NDArray[np.float64]) -> NDArray[np.float64]:
-    """(K, n) Brier loss of each seed on each row (binary: positive class; else summed)."""
+    """(..., n) Brier loss on each row (binary: positive class; else summed over classes)."""
     if probs.shape[-1] == 2:
         diff = probs[..., 1] - y
         return np.multiply(diff, diff, out=diff)
     diff = probs.copy()
-    true_p = np.take_along_axis(diff, y[np.newaxis, :, np.newaxis], axis=2)
-    np.put_along_axis(diff, y[np.newaxis, :, np.newaxis], true_p - 1.0, axis=2)
+    index = y.reshape((1,) * (probs.ndim - 2) + (-1, 1))
+    true_p = np.take_along_axis(diff, index, axis=-1)
+    np.put_along_axis(diff, index, true_p - 1.0, axis=-1)
     np.multiply(diff, diff, out=diff)
     total = diff[..., 0].copy()
     for c in range(1, diff.shape[-1]):
@@ -494,29 +496,25 @@ def _confidence_bins(confidence: NDArray[np.float64], n_bins: int) -> NDArray[np
     return bins
 
 
-def _ece_per_seed(
+def _ece_one(
     y: NDArray[np.intp],
-    top_label: NDArray[np.intp],
+    top_label: NDArray,
     confidence: NDArray[np.float64],
     weights: NDArray[np.float64] | None,
     n_bins: int,
-) -> NDArray[np.float64]:
-    """(K,) ECE from the argmax labels and top-class confidences (module docstring)."""
-    n_seeds, n = confidence.shape
-    total = float(n) if weights is None else float(weights.sum())
-    out = np.empty(n_seeds)
-    for k in range(n_seeds):
-        conf = confidence[k]
-        bins = _confidence_bins(conf, n_bins)
-        correct = top_label[k] == y
-        if weights is None:
-            hits = np.bincount(bins, weights=correct, minlength=n_bins)
-            mass = np.bincount(bins, weights=conf, minlength=n_bins)
-        else:
-            hits = np.bincount(bins, weights=np.where(correct, weights, 0.0), minlength=n_bins)
-            mass = np.bincount(bins, weights=weights * conf, minlength=n_bins)
-        out[k] = float(np.abs(hits - mass).sum()) / total
-    return out
+) -> float:
+    """ECE of one seed from its argmax labels and top-class confidences (module docstring)."""
+    bins = _confidence_bins(confidence, n_bins)
+    correct = top_label == y
+    if weights is None:
+        hits = np.bincount(bins, weights=correct, minlength=n_bins)
+        mass = np.bincount(bins, weights=confidence, minlength=n_bins)
+        total = float(y.size)
+    else:
+        hits = np.bincount(bins, weights=np.where(correct, weights, 0.0), minlength=n_bins)
+        mass = np.bincount(bins, weights=weights * confidence, minlength=n_bins)
+        total = float(weights.sum())
+    return float(np.abs(hits - mass).sum()) / total
 
 
 def expected_calibration_error(
@@ -553,8 +551,8 @@ def expected_calibration_error(
     y = _as_y(y_true, max(n_cls, 2), "y_true")
     probs = as_seed_probabilities(p, y.size, n_cls)
     w = as_weights(sample_weight, y.size)
-    arg, top = _argmax_and_top(probs)
-    return _ece_per_seed(y, arg, top, w, int(n_bins))
+    return np.array([_ece_one(y, *_argmax_and_top(probs[k]), w, int(n_bins))
+                     for k in range(probs.shape[0])])
 
 
 # ------------------------------------------------------------------------ seed results
@@ -576,38 +574,63 @@ class _SeedStats:
 
 
 def _seed_stats(inp: _Inputs, *, rows: bool) -> _SeedStats:
-    counts, weighted, squared = _confusion(inp.y, inp.labels, inp.n_classes, inp.weights)
+    """Per-seed metrics and, with ``rows``, per-row losses averaged over seeds.
+
+    One pass per seed over n-long arrays: at a million rows a (K, n) temporary is tens of
+    megabytes, which the allocator maps fresh (and the kernel zero-fills) every time, while
+    n-long buffers are reused from the heap.
+    """
+    y, w = inp.y, inp.weights
+    n_seeds, n_cls = inp.n_seeds, inp.n_classes
+    counts, weighted, squared = _confusion(y, inp.labels, n_cls, w)
     cm = counts if weighted is None else weighted
     metrics = metrics_from_confusion(cm, present=counts)
     per_class = _per_class(np.asarray(cm, dtype=np.float64))
     stats_out = _SeedStats(metrics, per_class, counts, weighted, squared)
     if rows:
-        wrong = inp.labels != inp.y
-        stats_out.row_zero_one = wrong.sum(axis=0) / inp.n_seeds
+        wrong_rows = np.zeros(inp.n_rows, dtype=np.int64)
+        for k in range(n_seeds):
+            wrong_rows += inp.labels[k] != y
+        stats_out.row_zero_one = wrong_rows / n_seeds
     probs = inp.probabilities
     if probs is None:
         return stats_out
-    y, w = inp.y, inp.weights
-    row_log = _row_log_losses(y, probs)
-    metrics["log_loss"] = _row_mean(row_log, w)
-    if rows:
-        stats_out.row_log = row_log.mean(axis=0)
-    del row_log
-    row_brier = _row_brier(y, probs)
-    metrics["brier"] = _row_mean(row_brier, w)
-    if rows:
-        stats_out.row_brier = row_brier.mean(axis=0)
-    del row_brier
 
-    if inp.binary:
-        p1 = inp.positive_probability
-        positive = y == 1
-        ranking = [[ranking_stats(positive, p1[k], w)] for k in range(inp.n_seeds)]
-    else:
-        ranking = [
-            [ranking_stats(y == c, probs[k, :, c], w) for c in range(inp.n_classes)]
-            for k in range(inp.n_seeds)
-        ]
+    log_loss = np.empty(n_seeds)
+    brier = np.empty(n_seeds)
+    ece = np.empty(n_seeds)
+    log_rows = np.zeros(inp.n_rows) if rows else None
+    brier_rows = np.zeros(inp.n_rows) if rows else None
+    columns = [1] if inp.binary else list(range(n_cls))
+    positives = [y == c for c in columns]
+    ranking: list[list[RankingStats]] = []
+    for k in range(n_seeds):
+        probs_k = probs[k]
+        losses = _row_log_losses(y, probs_k)
+        log_loss[k] = _row_mean(losses, w)
+        if log_rows is not None:
+            log_rows += losses
+        losses = _row_brier(y, probs_k)
+        brier[k] = _row_mean(losses, w)
+        if brier_rows is not None:
+            brier_rows += losses
+        del losses
+        ranking.append([
+            ranking_stats(pos, probs_k[:, c], w)
+            for pos, c in zip(positives, columns, strict=True)
+        ])
+        if inp.binary:
+            top = np.maximum(probs_k[:, 0], probs_k[:, 1])
+            arg = inp.labels[k] if not inp.labels_given else probs_k[:, 1] > probs_k[:, 0]
+        else:
+            arg, top = _argmax_and_top(probs_k)
+        ece[k] = _ece_one(y, arg, top, w, ECE_BINS)
+    metrics["log_loss"] = log_loss
+    metrics["brier"] = brier
+    if log_rows is not None and brier_rows is not None:
+        stats_out.row_log = log_rows / n_seeds
+        stats_out.row_brier = brier_rows / n_seeds
+
     stats_out.ranking = ranking
     auc = np.array([[r.roc_auc for r in seed] for seed in ranking])
     ap = np.array([[r.average_precision for r in seed] for seed in ranking])
@@ -616,13 +639,7 @@ def _seed_stats(inp: _Inputs, *, rows: bool) -> _SeedStats:
     if not inp.binary:
         per_class["roc_auc"] = auc
         per_class["average_precision"] = ap
-
-    if inp.binary:
-        top = np.maximum(probs[..., 0], probs[..., 1])
-        arg = inp.labels if not inp.labels_given else (probs[..., 1] > probs[..., 0])
-    else:
-        arg, top = _argmax_and_top(probs)
-    metrics["ece"] = _ece_per_seed(y, arg, top, w, ECE_BINS)
+    metrics["ece"] = ece
     return stats_out
 
 
@@ -956,7 +973,7 @@ def _bias_variance(inp: _Inputs) -> dict[str, Decomposition]:
         if inp.binary:
             # positive-class form: expected_loss equals the binary ``brier`` score
             out["squared"] = squared_loss_decomposition(
-                inp.y.astype(np.float64), inp.positive_probability, sample_weight=inp.weights
+                inp.y.astype(np.float64), probs[..., 1], sample_weight=inp.weights
             )
         else:
             one_hot = np.zeros((inp.n_rows, inp.n_classes))
@@ -1019,7 +1036,7 @@ def _details(
         from .decomposition import brier_partition
 
         details["brier_partition"] = brier_partition(
-            inp.y, ensemble.positive_probability[0], sample_weight=inp.weights
+            inp.y, ensemble.probabilities[0, :, 1], sample_weight=inp.weights
         )
         details["brier_partition_of"] = (
             "the seed" if n_seeds == 1 else "the ensemble (mean of the seeds' probabilities)"

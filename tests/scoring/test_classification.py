@@ -714,6 +714,26 @@ def test_report_one_seed_has_same_shape_and_integer_confusion():
     assert report.ensemble == pytest.approx(report.scores, rel=1e-12)
 
 
+def test_report_with_sample_weights_on_both_sides():
+    rng = np.random.default_rng(74)
+    y, probs, w = _random_task(rng, 300, 2, 3, weights=True)
+    y_tr, probs_tr, w_tr = _random_task(rng, 200, 2, 3, weights=True)
+    report = classification_report(
+        y, 3, probabilities=probs, sample_weight=w,
+        train_y_true=y_tr, train_probabilities=probs_tr, train_sample_weight=w_tr,
+    )
+    for name, side in (("scores", (y, probs, w)), ("train_scores", (y_tr, probs_tr, w_tr))):
+        yy, pp, ww = side
+        refs = [_sklearn_seed(yy, pp[k].argmax(axis=1), pp[k], ww, 3) for k in range(2)]
+        values = getattr(report, name)
+        for metric in refs[0]:
+            # reference: sklearn.metrics with sample_weight, mean over seeds
+            assert values[metric] == pytest.approx(
+                np.mean([r[metric] for r in refs]), rel=1e-12), (name, metric)
+    support = np.bincount(y, weights=w, minlength=3)  # reference: numpy weighted counts
+    np.testing.assert_allclose(report.details["per_class"]["support_weight"], support, rtol=RTOL)
+
+
 def test_labels_only_report_majority_vote_ties_to_smallest():
     rng = np.random.default_rng(71)
     y = rng.integers(0, 3, 200)
