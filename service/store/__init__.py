@@ -4,7 +4,7 @@ The same code runs on SQLite (the default, a file) and PostgreSQL (psycopg 3); t
 decides. See ``store.Store`` for the connection lifetime rules.
 """
 
-from .blobs import decode_array, encode_array
+from .blobs import decode_array, decode_text, encode_array
 from .fingerprint import canonical_encoding, canonical_label_texts, fingerprint, new_salt
 from .store import (
     ROLES,
@@ -42,6 +42,7 @@ __all__ = [
     "canonical_encoding",
     "canonical_label_texts",
     "decode_array",
+    "decode_text",
     "encode_array",
     "fingerprint",
     "hash_token",

@@ -28,7 +28,7 @@ from numpy.typing import NDArray
 from sqlalchemy.engine import Engine
 
 from . import schema
-from .blobs import decode_array, encode_array
+from .blobs import decode_array, decode_text, encode_array
 
 ROLES = ("admin", "owner", "submitter")
 TOKEN_PREFIX = "hdt_"
@@ -124,7 +124,7 @@ class NewHoldout:
 class HoldoutArrays:
     """A holdout's sealed arrays, decoded once per process (immutable)."""
 
-    ids: NDArray  # (n,) object array of str, registration order
+    ids: NDArray  # (n,) str (fixed-width <U or object), registration order
     labels: NDArray  # (n,) float64 or intp class indices
     salt: bytes
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
@@ -427,7 +427,7 @@ class Store:
         labels = decode_array(row.labels)
         if labels.dtype.kind in "iu":
             labels = labels.astype(np.intp)
-        arrays = HoldoutArrays(ids=decode_array(row.ids), labels=labels, salt=bytes(row.salt))
+        arrays = HoldoutArrays(ids=decode_text(row.ids), labels=labels, salt=bytes(row.salt))
         with self._lock:
             self._cache[holdout_id] = arrays
             while len(self._cache) > self._cache_size:

@@ -100,3 +100,16 @@ def test_nothing_connects_before_first_use(tmp_path: Any) -> None:
     store.init_schema()
     assert (tmp_path / "lazy.db").exists()
     store.dispose()
+
+
+def test_holdout_ids_decode_to_fixed_width_text_when_compact() -> None:
+    from service.store import decode_text
+
+    ids = np.array(["r1", "row-22", "é"], dtype=object)
+    out = decode_text(encode_array(ids))
+    assert out.dtype.kind == "U" and out.tolist() == ids.tolist()
+    with_nul = np.array(["a", "b\x00"], dtype=object)
+    assert decode_text(encode_array(with_nul)).tolist() == with_nul.tolist()
+    one_long = np.array(["x" * 100_000] + [str(i) for i in range(2000)], dtype=object)
+    out = decode_text(encode_array(one_long))
+    assert out.dtype == object and out.tolist() == one_long.tolist()
