@@ -7,7 +7,7 @@ import os
 from collections.abc import Mapping
 from typing import Any
 
-from flask import Flask
+from flask import Flask, Response
 
 from service.settings import load_settings
 from service.store import Store
@@ -42,6 +42,14 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     register_error_handlers(app)
     for module in (health, holdouts, submissions, docs):
         app.register_blueprint(module.bp)
+
+    @app.after_request
+    def _security_headers(response: Response) -> Response:
+        # Scores and ids are for the token holder only: no shared cache may keep them.
+        response.headers.setdefault("Cache-Control", "no-store")
+        response.headers.setdefault("X-Content-Type-Options", "nosniff")
+        return response
+
     return app
 
 

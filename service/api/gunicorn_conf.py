@@ -10,6 +10,8 @@ log lines carry the path without the query string, and never a body.
 from __future__ import annotations
 
 import os
+import time
+from typing import Any
 
 from service.settings import load_settings
 
@@ -27,12 +29,36 @@ access_log_format = '%(h)s %(t)s "%(m)s %(U)s" %(s)s %(b)s %(M)sms'
 control_socket_disable = True
 
 
-def on_starting(server: object) -> None:
-    """Create missing tables once, in the master, then drop its connections."""
+_START_ATTEMPTS = 15
+_START_PAUSE_SECONDS = 2.0
+
+
+def on_starting(server: Any) -> None:
+    """Create missing tables once, in the master, then drop its connections.
+
+    The database may still be starting (a compose stack): retry for about 30 seconds, then
+    give up so that the supervisor restarts the service.
+    """
+    from sqlalchemy.exc import OperationalError
+
     from service.store import Store
 
     store = Store(_settings["DATABASE_URL"])
     try:
-        store.init_schema()
+        for attempt in range(1, _START_ATTEMPTS + 1):
+            try:
+                store.init_schema()
+                return
+            except OperationalError as exc:
+                if attempt == _START_ATTEMPTS:
+                    raise
+                server.log.warning(
+                    "database not reachable (%s); retrying (%d/%d)",
+                    type(exc.orig).__name__,
+                    attempt,
+                    _START_ATTEMPTS,
+                )
+                store.dispose()
+                time.sleep(_START_PAUSE_SECONDS)
     finally:
         store.dispose()

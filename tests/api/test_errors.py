@@ -90,3 +90,9 @@ def test_readiness_reports_an_unreachable_database(tmp_path: Any) -> None:
     r = client.get("/v1/holdouts", headers={"Authorization": "Bearer hdt_x"})
     body = _problem(r, 503)
     assert r.headers["Retry-After"] == "5" and "sqlite" not in body["detail"].lower()
+
+
+def test_responses_are_not_cached_or_sniffed(client: Any, owner: Any) -> None:
+    for r in (client.get("/healthz"), owner.get("/v1/holdouts"), client.get("/v1/holdouts")):
+        assert r.headers["Cache-Control"] == "no-store"
+        assert r.headers["X-Content-Type-Options"] == "nosniff"
