@@ -448,3 +448,22 @@ def test_parquet_and_csv_submissions_score_like_json(
     assert r.status_code == 201, r.get_json()
     assert r.get_json()["scores"]["mse"] == expected["mse"]
     assert r.get_json()["sweep"] == {"name": "d", "complexity": 2.0}
+
+
+def test_classification_table_scores_like_json(cls_holdout: Any, submitter: Any) -> None:
+    body, probs = probability_submission(cls_holdout)
+    classes = cls_holdout.response["classes"]
+    path = f"/v1/holdouts/{cls_holdout.id}/submissions"
+    by_json = _submit(submitter, cls_holdout.id, body)
+    columns: dict[str, Any] = {"id": pa.array(body["ids"])}
+    for k, seed in enumerate(body["probabilities"]):
+        for c, name in enumerate(classes):
+            columns[f"prob.{k}.{name}"] = pa.array([row[c] for row in seed])
+    sink = io.BytesIO()
+    pq.write_table(pa.table(columns), sink)
+    r = submitter.post(
+        f"{path}?model=boosted", data=sink.getvalue(), content_type="application/vnd.apache.parquet"
+    )
+    assert r.status_code == 201, r.get_json()
+    assert r.get_json()["scores"] == by_json["scores"]
+    assert r.get_json()["bias_variance"] == by_json["bias_variance"]
