@@ -9,6 +9,7 @@ fingerprint, so the labels are never compared in the clear or held twice.
 
 from __future__ import annotations
 
+from collections import Counter
 from dataclasses import dataclass
 from typing import Any
 
@@ -120,11 +121,9 @@ def _separator_errors(values: NDArray, field: str, what: str) -> list[dict[str, 
 
 
 def _duplicate_errors(values: list[str], field: str, what: str) -> list[dict[str, Any]]:
-    seen: set[str] = set()
-    repeated = [v for v in values if v in seen or seen.add(v)]  # type: ignore[func-returns-value]
-    if not repeated:
+    distinct = [v for v, count in Counter(values).items() if count > 1]
+    if not distinct:
         return []
-    distinct = list(dict.fromkeys(repeated))
     return [
         problem_error(
             field,
