@@ -94,9 +94,24 @@ def floats_from_python(
 
     Only exact ``int`` and ``float`` count as numbers: ``bool`` is a subclass of ``int`` in
     Python but means true/false in JSON, and numeric text like ``"1.5"`` stays text.
+
+    Fast path (``types`` not given): Arrow converts the list in one C pass, refusing text,
+    null, containers and huge integers; it does accept booleans (as 1.0 and 0.0), so only
+    the items that came out as exactly 0 or 1 are looked at again in Python. Otherwise one
+    pass learns the item types and a careful path finds the bad items.
     """
     n = len(seq)
     if types is None:
+        try:
+            arr = pa.array(seq, type=pa.float64())
+        except _ARROW_ERRORS:
+            arr = None
+        if arr is not None and not arr.null_count:
+            values = arr.to_numpy(zero_copy_only=False)
+            suspects = np.flatnonzero((values == 0.0) | (values == 1.0))
+            if suspects.size <= max(64, n // 16):
+                if not any(isinstance(seq[i], _BOOLS) for i in suspects.tolist()):
+                    return values, _NO_POS
         types = set(map(type, seq))
     if types <= {float, int}:
         try:
@@ -108,6 +123,7 @@ def floats_from_python(
     return None, np.flatnonzero(~good)
 
 
+_BOOLS = (bool, np.bool_)
 _NO_POS: NDArray[np.intp] = np.empty(0, dtype=np.intp)
 
 
@@ -170,6 +186,12 @@ def text_from_python(
     the array is None when any item is of a kind that is not accepted.
     """
     if types is None:
+        try:  # the common case (all text) without a separate pass to learn the item types
+            arr = pa.array(seq, type=pa.string())
+            if not arr.null_count:
+                return arr, _NO_POS, []
+        except _ARROW_ERRORS:
+            pass
         types = set(map(type, seq))
     try:
         if types == {str}:
@@ -222,11 +244,45 @@ def _text_examples(arr: pa.Array, pos: NDArray[np.intp], locate: Locate) -> list
     return [f"{locate(int(i))} = {show_text(arr[int(i)].as_py())}" for i in pos[:MAX_EXAMPLES]]
 
 
+def _string_buffers(arr: pa.Array) -> tuple[NDArray[np.int32], NDArray[np.uint8]]:
+    """(offsets (n+1,), data bytes) of a ``string`` array, as zero-copy numpy views."""
+    n = len(arr)
+    buffers = arr.buffers()
+    offsets = np.frombuffer(buffers[1], dtype=np.int32)[arr.offset : arr.offset + n + 1]
+    if buffers[2] is None or len(buffers[2]) == 0:
+        return offsets, np.zeros(0, dtype=np.uint8)
+    data = np.frombuffer(buffers[2], dtype=np.uint8)[int(offsets[0]) : int(offsets[-1])]
+    return offsets, data
+
+
+class TextStats:
+    """Per-entry lengths of a null-free string array, computed once and shared.
+
+    ``chars`` are code point counts; for ASCII text they are the byte lengths taken from the
+    offsets, so the common case costs one pass over the bytes (the ASCII/NUL scan).
+    """
+
+    def __init__(self, arr: pa.Array) -> None:
+        offsets, data = _string_buffers(arr)
+        self.byte_lengths = np.diff(offsets)
+        self.has_nul = bool(data.size) and not bool(data.all())
+        self.ascii = data.size == 0 or int(data.max()) < 128
+        if self.ascii:
+            self.chars = self.byte_lengths
+        else:
+            self.chars = pc.utf8_length(arr).to_numpy(zero_copy_only=False)
+
+
 def text_problems(
     arr: pa.Array, field: str, locate: Locate, limits: Limits, noun: str
-) -> list[IngestError]:
-    """Null, empty, too long, or NUL-containing entries of a string array (all found at once)."""
+) -> tuple[list[IngestError], TextStats]:
+    """Null, empty, too long, or NUL-containing entries of a string array (all found at once).
+
+    Also returns the array's ``TextStats`` for ``text_to_numpy``.
+    """
     problems: list[IngestError] = []
+    if arr.type != pa.string():
+        arr = pc.cast(arr, pa.string())
     if arr.null_count:
         pos = np.flatnonzero(arr.is_null().to_numpy(zero_copy_only=False))
         problems.append(
@@ -234,11 +290,11 @@ def text_problems(
                           [f"{locate(int(i))} = null" for i in pos[:MAX_EXAMPLES]])
         )
         arr = pc.fill_null(arr, "x")
-    lengths = pc.utf8_length(arr).to_numpy(zero_copy_only=False)
+    stats = TextStats(arr)
     for mask, what, hint in (
-        (lengths == 0, f"{noun} are empty", ""),
+        (stats.byte_lengths == 0, f"{noun} are empty", ""),
         (
-            lengths > limits.max_id_length,
+            stats.chars > limits.max_id_length,
             f"{noun} are longer than {limits.max_id_length} characters",
             "shorten them",
         ),
@@ -247,13 +303,12 @@ def text_problems(
             pos = np.flatnonzero(mask)
             examples = _text_examples(arr, pos, locate)
             problems.append(content_error(field, int(pos.size), what, examples, hint=hint))
-    nul = pc.match_substring(arr, "\x00").to_numpy(zero_copy_only=False)
-    if nul.any():
-        pos = np.flatnonzero(nul)
+    if stats.has_nul:
+        pos = np.flatnonzero(pc.match_substring(arr, "\x00").to_numpy(zero_copy_only=False))
         examples = _text_examples(arr, pos, locate)
         problems.append(content_error(field, int(pos.size), f"{noun} contain the NUL character",
                                       examples))
-    return problems
+    return problems, stats
 
 
 def raise_first(problems: list[IngestError]) -> None:
@@ -265,36 +320,41 @@ def raise_first(problems: list[IngestError]) -> None:
                           examples=first.examples, more=flat[1:])
 
 
-def text_to_numpy(arr: pa.Array) -> NDArray[Any]:
+def text_to_numpy(arr: pa.Array, stats: TextStats | None = None) -> NDArray[Any]:
     """A NUL-free, null-free Arrow string array as numpy text.
 
     Fixed-width ``<U{L}`` with L even (what ``align_ids`` hashes fastest) unless one long
     entry would make that cost much more memory than Python strings; then an object array
-    of ``str``.
+    of ``str``. ASCII text is widened to UTF-32 straight from Arrow's byte buffer.
     """
     n = len(arr)
     if n == 0:
-        return np.empty(0, dtype="<U1")
+        return np.empty(0, dtype="<U2")
     if arr.type != pa.string():
         arr = pc.cast(arr, pa.string())
-    lengths = pc.utf8_length(arr).to_numpy(zero_copy_only=False)
-    width = max(1, int(lengths.max()))
-    width += width % 2  # even width: align_ids then works on 64-bit words
+    if stats is None:
+        stats = TextStats(arr)
+    longest = max(1, int(stats.chars.max()))
+    width = longest + longest % 2  # even width: align_ids then works on 64-bit words
     fixed_bytes = 4 * width * n
-    object_bytes = n * (_PY_STR_OVERHEAD + float(lengths.mean()))
+    object_bytes = n * (_PY_STR_OVERHEAD + float(stats.chars.mean()))
     if fixed_bytes > max(_UNICODE_ALWAYS_BYTES, 2 * object_bytes):
         return arr.to_numpy(zero_copy_only=False)
-    out = np.empty(n, dtype=f"<U{width}")
-    if pc.all(pc.string_is_ascii(arr)).as_py():
-        # Pad every entry to `width` bytes with NUL (ids never contain NUL), then the data
-        # buffer is an (n, width) byte matrix: widen it to UTF-32 code units in one step.
-        padded = pc.utf8_rpad(arr, width=width, padding="\x00")
-        offsets = np.frombuffer(padded.buffers()[1], dtype=np.int32)
-        start = int(offsets[padded.offset])
-        data = np.frombuffer(padded.buffers()[2], dtype=np.uint8, count=n * width, offset=start)
-        out.view(np.uint32).reshape(n, width)[...] = data.reshape(n, width)
-    else:
+    if not stats.ascii:
+        out = np.empty(n, dtype=f"<U{width}")
         out[...] = arr.to_numpy(zero_copy_only=False)
+        return out
+    out = np.zeros(n, dtype=f"<U{width}")
+    units = out.view(np.uint32).reshape(n, width)
+    if (stats.byte_lengths == longest).all():
+        # Every id has the same length: Arrow's data buffer already is an (n, L) byte matrix.
+        _, data = _string_buffers(arr)
+        units[:, :longest] = data.reshape(n, longest)
+    else:
+        # Pad every entry with NUL to `width` bytes (ids never contain NUL), then the buffer
+        # is an (n, width) byte matrix: widen it to UTF-32 code units in one step.
+        _, data = _string_buffers(pc.utf8_rpad(arr, width=width, padding="\x00"))
+        units[...] = data.reshape(n, width)
     return out
 
 
@@ -385,13 +445,21 @@ def floats_from_arrow(
             pos += len(chunk)
         return out
     if pa.types.is_string(t):
+        try:
+            parsed = pc.cast(col, pa.float64())
+        except pa.ArrowInvalid:
+            parsed = None
+        if parsed is not None:
+            pos = 0
+            for chunk in parsed.chunks:
+                out[pos : pos + len(chunk)] = chunk.to_numpy(zero_copy_only=False)
+                pos += len(chunk)
+            return out
         tally = Tally()
         pos = 0
         for chunk in col.chunks:
             try:
-                out[pos : pos + len(chunk)] = pc.cast(chunk, pa.float64()).to_numpy(
-                    zero_copy_only=False
-                )
+                pc.cast(chunk, pa.float64())
             except pa.ArrowInvalid:
                 bad = _bad_float_text(chunk)
                 base = pos
@@ -399,10 +467,8 @@ def floats_from_arrow(
                     bad, lambda i, c=chunk, b=base: f"{locate(b + i)} = {show_text(c[i].as_py())}"
                 )
             pos += len(chunk)
-        if tally:
-            raise content_error(field, tally.count, "values are not numbers", tally.examples,
-                                hint="write plain decimal numbers such as 0.25 or -3e-2")
-        return out
+        raise content_error(field, tally.count, "values are not numbers", tally.examples,
+                            hint="write plain decimal numbers such as 0.25 or -3e-2")
     raise _type_error(field, col, "numbers")
 
 
@@ -443,5 +509,6 @@ def text_from_arrow(
     else:
         expected = "text, integers or numbers" if labels else "text or integers"
         raise _type_error(field, col, expected)
-    raise_first(text_problems(arr, field, locate, limits, noun))
+    problems, _ = text_problems(arr, field, locate, limits, noun)
+    raise_first(problems)
     return arr

@@ -89,8 +89,9 @@ def id_array(value: object, *, field: str = "ids", limits: Limits) -> NDArray[An
         tally = Tally()
         tally.add_items(bad, bad_values, lambda i: f"{field}[{i}]", kind=bad_text_kind)
         raise _bad_items_error(field, "ids", "strings or integers", tally)
-    raise_first(text_problems(arr, field, lambda i: f"{field}[{i}]", limits, "ids"))
-    return text_to_numpy(arr)
+    problems, stats = text_problems(arr, field, lambda i: f"{field}[{i}]", limits, "ids")
+    raise_first(problems)
+    return text_to_numpy(arr, stats)
 
 
 def _seed_lists(
@@ -100,9 +101,9 @@ def _seed_lists(
     outer = _require_list(
         value, field, f"a list of {item} (one seed) or a list of such lists (one per seed)"
     )
+    if not isinstance(outer[0], list):
+        return [outer], False, None  # one seed; a stray list inside is "not a number"
     types = set(map(type, outer))
-    if list not in types:
-        return [outer], False, types
     if types != {list}:
         type_arr = np.fromiter(map(type, outer), dtype=object, count=len(outer))
         bad = np.flatnonzero(np.not_equal(type_arr, list))
@@ -391,8 +392,9 @@ def target_vector(
         tally = Tally()
         tally.add_items(bad, bad_values, locate, kind=bad_text_kind)
         raise _bad_items_error(field, "labels", "strings or finite numbers", tally)
-    raise_first(text_problems(arr, field, locate, limits, "labels"))
-    return text_to_numpy(arr)
+    problems, stats = text_problems(arr, field, locate, limits, "labels")
+    raise_first(problems)
+    return text_to_numpy(arr, stats)
 
 
 def check_task(task: str) -> None:

@@ -323,3 +323,33 @@ def test_classification_targets_are_canonical_text():
 def test_unknown_task_is_a_programming_error():
     with pytest.raises(ValueError):
         target_vector([1.0], task="ranking")
+
+
+@pytest.mark.parametrize("value, example", [
+    ([0.0, 1.0] * 500 + [True], "p[1000] = true"),    # many genuine 0s and 1s: full check
+    ([0.5] * 1000 + [False], "p[1000] = false"),      # few suspects: only they are checked
+    ([1, 0] * 10 + [True, 0.5], "p[20] = true"),
+])
+def test_a_boolean_hidden_among_exact_zeros_and_ones_is_found(value, example):
+    # Arrow turns true/false into 1.0/0.0; the check must find them among genuine 0s and 1s
+    err = raises(float_matrix, value, field="p", n_rows=None, limits=LIMITS)
+    assert err.count == 1 and "boolean" in err.message and err.examples == [example]
+
+
+def test_exact_zeros_and_ones_are_numbers():
+    value = [0.0, 1.0] * 600 + [1, 0]
+    got = float_matrix(value, field="p", n_rows=None, limits=LIMITS)
+    # reference: Python float() of each item
+    assert got.tolist() == [[float(v) for v in value]]
+
+
+def test_ids_of_one_length_many_lengths_and_non_ascii_convert_alike():
+    for raw in (
+        [f"{i:06d}" for i in range(2000)],              # one length: the byte buffer is a matrix
+        [str(i) for i in range(2000)],                  # many lengths: padded first
+        [f"é{i}" for i in range(2000)],                 # non-ASCII: through Python strings
+        [f"id{i}" for i in range(1999)] + ["x" * 7],    # odd longest length
+    ):
+        ids = id_array(raw, limits=LIMITS)
+        assert ids.tolist() == raw
+        assert ids.dtype.kind == "U" and (ids.dtype.itemsize // 4) % 2 == 0

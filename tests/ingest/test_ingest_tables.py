@@ -385,3 +385,43 @@ def test_demo_submissions_parse():
     got = submission_from_table(cls, task="classification",
                                 classes=["on_time", "late", "very_late"], limits=LIMITS)
     assert got.labels.shape == got.probabilities.shape[:2] == (2, 12)
+
+
+def test_untyped_csv_with_many_blocks_names_every_bad_cell():
+    rows = [f"r{i},{i * 0.5}" for i in range(200_000)]
+    rows[3] = "r3,oops"
+    rows[150_000] = "r150000,"
+    text = "id,pred\n" + "\n".join(rows) + "\n"
+    table = read_table(text.encode(), CSV_MEDIA_TYPE)  # untyped: pred is read as text
+    assert table.column("pred").num_chunks > 1
+    err = error_of(submission_from_table, table, task="regression", classes=None, limits=LIMITS)
+    assert err.count == 2 and err.examples == ['row 4 = "oops"', 'row 150001 = ""']
+
+
+def test_parquet_dictionary_and_large_string_ids():
+    ids = ["b", "a", "c"]
+    for column in (pa.array(ids).dictionary_encode(), pa.array(ids, pa.large_string())):
+        table = pa.table({"id": column, "y_true": [1.0, 2.0, 3.0]})
+        got, _ = holdout_from_table(read_table(parquet_bytes(table), PARQUET_MEDIA_TYPE),
+                                    task="regression")
+        assert got.tolist() == ids
+
+
+def test_parquet_nan_and_infinite_predictions_are_refused():
+    table = pa.table({"id": ["a", "b", "c"], "pred.s": [1.0, float("nan"), float("-inf")]})
+    body = parquet_bytes(table)
+    err = error_of(lambda: submission_from_table(read_table(body, PARQUET_MEDIA_TYPE),
+                                                 task="regression", classes=None, limits=LIMITS))
+    assert (err.field, err.count) == ("pred.s", 2)
+    assert err.examples == ["row 2 = NaN", "row 3 = -Infinity"]
+
+
+def test_long_empty_and_nul_ids_in_tables():
+    limits = Limits(max_id_length=4)
+    table = pa.table({"id": ["abcd", "abcde", "", "a\x00"], "pred": [1.0, 2.0, 3.0, 4.0]})
+    err = error_of(submission_from_table, table, task="regression", classes=None, limits=limits)
+    problems = err.to_problem_errors()
+    assert [p["examples"] for p in problems] == [
+        ['row 3 = ""'], ['row 2 = "abcde"'], ['row 4 = "a\\u0000"'],
+    ]
+    assert all(p["field"] == "id" for p in problems)
