@@ -42,9 +42,10 @@ Conventions
     ``ECE = sum_b (W_b / W) * |accuracy_b - mean confidence_b|`` where accuracy is that of
     the argmax label. Weighted by ``sample_weight``.
 
-- Confusion matrices come from one ``np.bincount`` of ``y * C + label`` (int64), and every
-  count-based metric is computed in float64 from the counts, so nothing overflows at a
-  million rows (integer MCC products of counts near 1e6 exceed 2**63).
+- Confusion matrices come from one ``np.bincount`` of ``y * C + label`` per seed (int64
+  counts), and every count-based metric is computed in float64 from the counts, so
+  nothing overflows at a million rows (integer MCC products of counts near 1e6 exceed
+  2**63).
 - ROC AUC, average precision and DeLong's variance come from one sort per seed and class
   (``_binary_curves``).
 
@@ -69,7 +70,8 @@ Intervals (``classification_report``)
   under the precision-recall curve: point estimates and confidence intervals"), from
   memory: ``expit(logit(AP) +- z / sqrt(n_pos AP (1 - AP)))`` with ``n_pos`` the
   (effective) number of positives; reported with ``method="delta"`` (it is the delta
-  method on the logit scale). Multiclass: endpoints averaged over classes as for AUC.
+  method on the logit scale). Its coverage is checked by simulation in the tests.
+  Multiclass: endpoints averaged over classes as for AUC.
 - ``ece``: no interval (see ``_ECE_NO_INTERVAL``).
 - K > 1 for everything but accuracy, log loss and Brier: each seed's interval, combined
   with ``intervals.seed_mean_interval`` (conservative).

@@ -425,8 +425,9 @@ def test_delong_variance_matches_its_definition(ties):
     r = ranking_stats(positive, scores)
     np.testing.assert_allclose(r.roc_auc, auc, rtol=RTOL)
     np.testing.assert_allclose(r.roc_auc_variance, var, rtol=1e-10)
-    # unit weights take the weighted path: same numbers
-    rw = ranking_stats(positive, scores, np.ones(300))
+    # constant weights take the weighted path: same numbers (Kish's n equals n)
+    rw = ranking_stats(positive, scores, np.full(300, 3.7))
+    np.testing.assert_allclose(rw.roc_auc, auc, rtol=RTOL)
     np.testing.assert_allclose(rw.roc_auc_variance, var, rtol=1e-10)
     a, placement = roc_auc_placements(positive, scores)
     np.testing.assert_allclose(a, auc, rtol=RTOL)
@@ -548,6 +549,24 @@ def test_count_bootstrap_of_f1_against_scipy_row_bootstrap():
         assert ours.method == f"bootstrap_{method}"
         assert ours.low == pytest.approx(ref.low, abs=0.01)
         assert ours.high == pytest.approx(ref.high, abs=0.01)
+
+
+def test_constant_weights_leave_every_interval_unchanged():
+    # weights that are all equal carry no information: every interval must equal the
+    # unweighted one (the weighted count bootstrap is exact in this case)
+    rng = np.random.default_rng(66)
+    y, probs, _ = _random_task(rng, 150, 2, 3)
+    for method in ("percentile", "bca"):
+        options = ScoringOptions(bootstrap_method=method, n_resamples=300)
+        plain = classification_report(y, 3, probabilities=probs, options=options)
+        weighted = classification_report(
+            y, 3, probabilities=probs, sample_weight=np.full(150, 0.25), options=options
+        )
+        for name, iv in plain.intervals.items():
+            other = weighted.intervals[name]
+            assert other.method == iv.method, name
+            np.testing.assert_allclose([other.low, other.high], [iv.low, iv.high],
+                                       rtol=1e-9, equal_nan=True, err_msg=name)
 
 
 def test_count_jackknife_bca_equals_row_jackknife_bca():
