@@ -161,13 +161,49 @@ def _fast_order(h: NDArray[np.str_], s: NDArray[np.str_]) -> NDArray[np.intp] | 
     return order
 
 
+def _unicode_to_arrow(u: NDArray[np.str_]) -> pa.Array:
+    """Fixed-width text as an Arrow string array; ASCII without a Python object per id."""
+    n = u.size
+    width = u.dtype.itemsize // 4
+    units = np.ascontiguousarray(u).view(np.uint32).reshape(n, width)
+    if n == 0 or width == 0 or int(units.max()) >= 128:
+        return pa.array(u, type=pa.string())
+    lengths = np.strings.str_len(u).astype(np.int32)
+    offsets = np.zeros(n + 1, dtype=np.int32)
+    np.cumsum(lengths, out=offsets[1:])
+    data = units[np.arange(width) < lengths[:, None]].astype(np.uint8)
+    return pa.StringArray.from_buffers(n, pa.py_buffer(offsets), pa.py_buffer(data))
+
+
 def _arrow_text(ids: NDArray[Any], name: str) -> pa.Array:
     try:
         if ids.dtype.kind == "U":
-            return pa.array(ids, type=pa.string())
+            return _unicode_to_arrow(ids)
         return pa.array(ids.tolist(), type=pa.string())
     except (pa.ArrowException, TypeError, ValueError, UnicodeEncodeError) as exc:
         raise TypeError(f"{name} must hold text ids (use id_array): {exc}") from None
+
+
+def _surely_unique(ids: NDArray[Any]) -> bool:
+    """True when the ids are certainly distinct (hash prefixes differ, or the few rows whose
+    prefixes tie are distinct strings); False means "not shown": check exactly."""
+    u = _as_unicode(ids)
+    if u is None:
+        return False
+    n = u.size
+    if n < 2:
+        return True
+    bits = max(1, (n - 1).bit_length())
+    low = np.uint64((1 << bits) - 1)
+    keys = np.sort((_row_hash(_code_units(u)) & ~low) | np.arange(n, dtype=np.uint64))
+    prefixes = keys & ~low
+    tied = np.flatnonzero(prefixes[1:] == prefixes[:-1])
+    if tied.size == 0:
+        return True
+    if tied.size > _REPAIR_LIMIT:
+        return False
+    rows = np.unique(np.concatenate([keys[tied], keys[tied + 1]]) & low).astype(np.intp)
+    return len(set(u[rows].tolist())) == rows.size
 
 
 def _distinct_examples(values: list[str], limit: int = MAX_EXAMPLES) -> list[str]:
@@ -183,9 +219,10 @@ def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.int
     ha = _arrow_text(h, "holdout_ids")
     sa = _arrow_text(s, "submitted_ids")
     n_h, n_s = len(ha), len(sa)
-    first = pc.index_in(ha, value_set=ha).to_numpy(zero_copy_only=False)
-    if not np.array_equal(first, np.arange(n_h)):
-        raise ValueError("holdout ids are not unique")
+    if not _surely_unique(h):
+        first = pc.index_in(ha, value_set=ha).to_numpy(zero_copy_only=False)
+        if not np.array_equal(first, np.arange(n_h)):
+            raise ValueError("holdout ids are not unique")
     idx = pc.fill_null(pc.index_in(sa, value_set=ha), -1).to_numpy(zero_copy_only=False)
     idx = idx.astype(np.intp)
     known = idx >= 0
@@ -282,14 +319,8 @@ def align_ids(
 def require_unique_ids(ids: NDArray[Any], *, field: str = "ids") -> None:
     """422 naming repeated ids (for a holdout built from JSON; tables check this themselves)."""
     arr = _as_1d(ids, field)
-    u = _as_unicode(arr)
-    if u is not None and u.size:
-        n = u.size
-        bits = max(1, (n - 1).bit_length())
-        high = ~np.uint64((1 << bits) - 1)
-        prefixes = np.sort(_row_hash(_code_units(u)) & high)
-        if not (prefixes[1:] == prefixes[:-1]).any():
-            return  # distinct hashes, so distinct ids
+    if _surely_unique(arr):
+        return
     a = _arrow_text(arr, field)
     first = pc.index_in(a, value_set=a).to_numpy(zero_copy_only=False)
     repeated = np.flatnonzero(first != np.arange(len(a)))

@@ -64,7 +64,7 @@ def _require_list(value: object, field: str, expected: str) -> list[Any]:
 def _check_rows(field: str, n: int, limits: Limits) -> None:
     if n > limits.max_rows:
         raise whole_field_error(
-            field, f"has {n} rows, more than the limit of {limits.max_rows}", status=413
+            field, f"has {n} rows, more than the limit of {limits.max_rows}", status=413, count=n
         )
 
 
@@ -114,7 +114,8 @@ def _seed_lists(
         )
     if len(outer) > limits.max_seeds:
         raise whole_field_error(
-            field, f"has {len(outer)} seeds, more than the limit of {limits.max_seeds}"
+            field, f"has {len(outer)} seeds, more than the limit of {limits.max_seeds}",
+            count=len(outer),
         )
     return outer, True, None
 

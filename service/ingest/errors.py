@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Iterable, Sequence
 from typing import Any
 
 import numpy as np
@@ -149,17 +149,13 @@ def content_error(
 
 
 def whole_field_error(field: str, message: str, *, status: int = 422, value: Any = None,
-                      show: bool = False) -> IngestError:
-    """A problem with a field as a whole (wrong type, empty, too many seeds): count 1."""
+                      show: bool = False, count: int = 1) -> IngestError:
+    """A problem with a field as a whole (wrong type, empty, too many seeds or rows).
+
+    ``count`` is 1 (the field) unless a size is the problem, then it is that size.
+    """
     examples = [show_value(value)] if show else []
     text = f"{field}: {message}"
     if examples:
         text += f"; got {examples[0]}"
-    return IngestError(status, field, text, count=1, examples=examples)
-
-
-def positions_examples(
-    positions: np.ndarray, describe: Callable[[int], str], limit: int = MAX_EXAMPLES
-) -> list[str]:
-    """Format the first ``limit`` bad positions (already found by a numpy mask)."""
-    return [describe(int(i)) for i in positions[:limit]]
+    return IngestError(status, field, text, count=count, examples=examples)

@@ -151,7 +151,7 @@ def _read_csv(body: bytes, limits: Limits, task: str | None, id_column: str,
     _duplicate_columns(names)
     typed = _csv_column_types(names, task, id_column, target_column)
     as_text = {name: pa.string() for name in names}
-    read_options = pacsv.ReadOptions(use_threads=False)
+    read_options = pacsv.ReadOptions(use_threads=True)
     table = None
     for column_types in ((typed, as_text) if typed != as_text else (as_text,)):
         convert = pacsv.ConvertOptions(
@@ -192,7 +192,7 @@ def _read_parquet(body: bytes, limits: Limits) -> pa.Table:
         )
     _duplicate_columns(names)
     try:
-        return parquet.read(use_threads=False)
+        return parquet.read(use_threads=True)
     except _PARSE_ERRORS as exc:
         raise _unreadable("Parquet", exc) from None
 

@@ -7,6 +7,7 @@ from collections import Counter
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -190,3 +191,21 @@ def orjson_text(x: str) -> str:
     import orjson
 
     return orjson.dumps(x).decode()[1:-1]
+
+
+@settings(max_examples=100, derandomize=True, deadline=None)
+@given(st.lists(st.text(alphabet=st.characters(blacklist_categories=("Cs",)), max_size=8),
+                max_size=30))
+def test_fixed_width_text_converts_to_arrow_like_pyarrow(values):
+    u = np.array(values, dtype="<U8") if values else np.array([], dtype="<U2")
+    # reference: pyarrow's own conversion of numpy text
+    assert align_module._unicode_to_arrow(u).to_pylist() == pa.array(u, pa.string()).to_pylist()
+
+
+def test_repeats_are_found_even_when_every_hash_collides(monkeypatch):
+    monkeypatch.setattr(align_module, "_row_hash", lambda units: np.zeros(len(units), np.uint64))
+    require_unique_ids(ids(["a", "b", "c"]))
+    err = pytest.raises(IngestError, require_unique_ids, ids(["a", "b", "a"])).value
+    assert err.examples == ['"a"']
+    with pytest.raises(ValueError):
+        align_ids(ids(["a", "b", "a"]), ids(["a", "b", "c"]))

@@ -6,7 +6,9 @@ candidate alike); each figure is the median over rounds in milliseconds, with th
 beside it (``*_min_ms``).
 
 - ``align_ms``: ``align_ids`` on n shuffled string ids (both sides from ``id_array``),
-  timed in a block of its own before the parsing candidates; ``align_with_unknown_id_ms``:
+  timed in a block of its own before the parsing candidates (ids like
+  ``crossing-0000042-1f0c9a7e``, 25 characters; ``align_short_ids_ms``: ``id0000042``, 9
+  characters); ``align_with_unknown_id_ms``:
   the same with one unknown id (the exact path that builds the error message);
   ``pandas_get_indexer_ms``: ``pandas.Index.get_indexer`` on the same ids as Python
   strings (one round: it is slow), and ``align_speedup_vs_pandas``.
@@ -120,6 +122,12 @@ def main(n: int = 1_000_000, k: int = 10, repeats: int = 7) -> dict[str, Any]:
     for _ in range(repeats):
         elapsed, checks["align"] = _timed(align)
         times["align"].append(elapsed)
+    short = id_array([f"id{i:07d}" for i in range(n)], limits=LIMITS)
+    short_shuffled = short[perm]
+    for _ in range(repeats):
+        elapsed, short_order = _timed(lambda: align_ids(short, short_shuffled))
+        times.setdefault("align_short_ids", []).append(elapsed)
+    assert short_shuffled[short_order].tolist() == short.tolist()
     wrong = submitted.copy()
     wrong[n // 2] = "not-a-holdout-id"
     for _ in range(max(1, repeats // 3)):
