@@ -12,6 +12,9 @@ Fast path (text arrays of fixed width, what ``id_array`` and the table readers r
    paired wrongly; they fail the check and are re-paired by exact string lookup. Nothing
    is ever accepted on a hash alone.
 
+The holdout side's sorted keys are kept for the last few holdout arrays seen (the service
+keeps each holdout's ids in memory), so a repeat submission costs only its own side.
+
 Exact path (anything else, and every input with missing, unknown or duplicate ids): Arrow's
 hash table (``pyarrow.compute.index_in``), which compares the strings themselves; it also
 finds everything an error message needs.
@@ -20,6 +23,9 @@ finds everything an error message needs.
 from __future__ import annotations
 
 import functools
+import threading
+import weakref
+from collections import OrderedDict
 from typing import Any
 
 import numpy as np
@@ -105,8 +111,69 @@ def _same_rows(hu: NDArray[Any], su: NDArray[Any], order: NDArray[np.intp],
     return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)
 
 
-def _fast_order(h: NDArray[np.str_], s: NDArray[np.str_]) -> NDArray[np.intp] | None:
-    """The order for a clean submission, or None when the exact path must decide."""
+class _HoldoutKeys:
+    """Sorted hash keys of recently seen holdout arrays, by array identity (a small LRU).
+
+    The service keeps each holdout's decoded ids in memory and aligns many submissions to
+    them; hashing and sorting that side again for every submission would repeat a third of
+    the work. Safe by construction: a cached key only proposes a pairing, which is verified
+    exactly against the arrays as they are now; on any failure the keys are recomputed.
+    """
+
+    def __init__(self, size: int = 4) -> None:
+        self.size = size
+        self.entries: OrderedDict[int, tuple[weakref.ref[Any], tuple[Any, ...], Any]] = (
+            OrderedDict()
+        )
+        self.lock = threading.Lock()
+
+    @staticmethod
+    def _signature(arr: NDArray[Any]) -> tuple[Any, ...]:
+        return (arr.__array_interface__["data"][0], arr.shape, arr.strides, arr.dtype.str)
+
+    def get(self, arr: NDArray[Any]) -> NDArray[np.uint64] | None:
+        with self.lock:
+            entry = self.entries.get(id(arr))
+            if entry is None or entry[0]() is not arr or entry[1] != self._signature(arr):
+                return None
+            self.entries.move_to_end(id(arr))
+            return entry[2]
+
+    def put(self, arr: NDArray[Any], keys: NDArray[np.uint64]) -> None:
+        keys.flags.writeable = False
+        try:
+            ref = weakref.ref(arr)
+        except TypeError:
+            return
+        with self.lock:
+            self.entries[id(arr)] = (ref, self._signature(arr), keys)
+            self.entries.move_to_end(id(arr))
+            while len(self.entries) > self.size:
+                self.entries.popitem(last=False)
+
+    def drop(self, arr: NDArray[Any]) -> None:
+        with self.lock:
+            self.entries.pop(id(arr), None)
+
+
+_holdout_keys = _HoldoutKeys()
+
+
+def _sorted_keys(units: NDArray[Any], bits: int) -> NDArray[np.uint64]:
+    """Row hashes with the row index in the low ``bits`` bits, sorted."""
+    n = units.shape[0]
+    low = np.uint64((1 << bits) - 1)
+    return np.sort((_row_hash(units) & ~low) | np.arange(n, dtype=np.uint64))
+
+
+def _fast_order(
+    h: NDArray[np.str_], s: NDArray[np.str_], owner: NDArray[Any] | None = None
+) -> NDArray[np.intp] | None:
+    """The order for a clean submission, or None when the exact path must decide.
+
+    ``owner`` is the caller's holdout array when ``h`` is that very array, so its sorted
+    keys may be taken from (and kept in) the cache.
+    """
     n = h.size
     if s.size != n or n == 0:
         return None
@@ -115,6 +182,7 @@ def _fast_order(h: NDArray[np.str_], s: NDArray[np.str_]) -> NDArray[np.intp] | 
         width += width % 2
         h = h.astype(f"<U{width}")
         s = s.astype(f"<U{width}")
+        owner = None
     hu = _code_units(h)
     su = _code_units(s)
     head = min(n, 64)
@@ -123,9 +191,24 @@ def _fast_order(h: NDArray[np.str_], s: NDArray[np.str_]) -> NDArray[np.intp] | 
     bits = max(1, (n - 1).bit_length())
     low = np.uint64((1 << bits) - 1)
     high = ~low
-    index = np.arange(n, dtype=np.uint64)
-    kh = np.sort((_row_hash(hu) & high) | index)
-    ks = np.sort((_row_hash(su) & high) | index)
+    kh = _holdout_keys.get(owner) if owner is not None else None
+    cached = kh is not None
+    if kh is None:
+        kh = _sorted_keys(hu, bits)
+        if owner is not None:
+            _holdout_keys.put(owner, kh)
+    order = _pair_and_verify(h, s, hu, su, kh, _sorted_keys(su, bits), low, high)
+    if order is None and cached:
+        _holdout_keys.drop(owner)  # the cached keys may be stale: decide on fresh ones
+        return _fast_order(h, s, owner)
+    return order
+
+
+def _pair_and_verify(
+    h: NDArray[np.str_], s: NDArray[np.str_], hu: NDArray[Any], su: NDArray[Any],
+    kh: NDArray[np.uint64], ks: NDArray[np.uint64], low: np.uint64, high: np.uint64,
+) -> NDArray[np.intp] | None:
+    n = h.size
     ph = kh & high
     if not np.array_equal(ph, ks & high):
         return None
@@ -310,7 +393,9 @@ def align_ids(
     s = _as_1d(submitted_ids, "submitted_ids")
     hu = _as_unicode(h)
     su = _as_unicode(s) if hu is not None else None
-    order = _fast_order(hu, su) if hu is not None and su is not None else None
+    order = None
+    if hu is not None and su is not None:
+        order = _fast_order(hu, su, owner=h if hu is h else None)
     if order is None:
         order = _exact_order(h, s, field)
     return order

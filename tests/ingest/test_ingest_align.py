@@ -209,3 +209,23 @@ def test_repeats_are_found_even_when_every_hash_collides(monkeypatch):
     assert err.examples == ['"a"']
     with pytest.raises(ValueError):
         align_ids(ids(["a", "b", "a"]), ids(["a", "b", "c"]))
+
+
+def test_cached_holdout_keys_are_reused_and_never_trusted():
+    rng = np.random.default_rng(5)
+    holdout = [f"k{i}" for i in range(2000)]
+    h = ids(holdout)
+    for _ in range(3):
+        submitted = [holdout[i] for i in rng.permutation(2000)]
+        order = align_ids(h, ids(submitted))
+        np.testing.assert_array_equal(order, reference_order(holdout, submitted))
+    assert align_module._holdout_keys.get(h) is not None
+    # change the holdout array in place: the cached keys are stale, the answer must not be
+    h[0], h[1] = h[1], h[0]
+    holdout[0], holdout[1] = holdout[1], holdout[0]
+    submitted = [holdout[i] for i in rng.permutation(2000)]
+    order = align_ids(h, ids(submitted))
+    np.testing.assert_array_equal(order, reference_order(holdout, submitted))
+    h[5] = "brand-new"
+    err = pytest.raises(IngestError, align_ids, h, ids(submitted)).value
+    assert err.examples == ['"k5"']  # the submission's k5 is no longer a holdout id
