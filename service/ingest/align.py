@@ -15,9 +15,11 @@ Fast path (text arrays of fixed width, what ``id_array`` and the table readers r
 The holdout side's sorted keys are kept for the last few holdout arrays seen (the service
 keeps each holdout's ids in memory), so a repeat submission costs only its own side.
 
-Exact path (anything else, and every input with missing, unknown or duplicate ids): Arrow's
-hash table (``pyarrow.compute.index_in``), which compares the strings themselves; it also
-finds everything an error message needs.
+Exact path (every input with missing, unknown or duplicate ids, and anything the fast path
+could not settle): a hash join, the holdout's full 64-bit hashes sorted and each submitted
+id compared exactly with its single candidate, which also finds everything an error
+message needs; where that cannot decide (two holdout ids with one hash, or text that is not
+fixed-width), Arrow's hash table (``pyarrow.compute.index_in``) on the strings themselves.
 """
 
 from __future__ import annotations
@@ -298,22 +300,74 @@ def _distinct_examples(values: list[str], limit: int = MAX_EXAMPLES) -> list[str
     return list(seen)
 
 
+def _hash_join(h: NDArray[Any], s: NDArray[Any]) -> NDArray[np.intp] | None:
+    """For each submitted id, its holdout position or -1, exactly; None if this cannot tell.
+
+    Full 64-bit row hashes, the holdout's sorted; each submitted hash has at most one
+    candidate (None when two holdout hashes are equal), and every candidate is compared
+    with the submitted id code unit by code unit. A submitted id with no equal candidate
+    is in no holdout row: equal ids have equal hashes.
+    """
+    hu_arr, su_arr = _as_unicode(h), _as_unicode(s)
+    if hu_arr is None or su_arr is None or hu_arr.size == 0 or su_arr.size == 0:
+        return None
+    if hu_arr.dtype.itemsize != su_arr.dtype.itemsize:
+        width = max(hu_arr.dtype.itemsize, su_arr.dtype.itemsize) // 4
+        width += width % 2
+        hu_arr, su_arr = hu_arr.astype(f"<U{width}"), su_arr.astype(f"<U{width}")
+    hu, su = _code_units(hu_arr), _code_units(su_arr)
+    hh = _row_hash(hu)
+    by_hash = np.argsort(hh)
+    sorted_hh = hh[by_hash]
+    if (sorted_hh[1:] == sorted_hh[:-1]).any():
+        return None
+    hs = _row_hash(su)
+    by_submitted_hash = np.argsort(hs)
+    where = np.empty(hs.size, dtype=np.intp)
+    # sorted needles make every binary search start where the last one ended (cache-friendly)
+    where[by_submitted_hash] = np.searchsorted(sorted_hh, hs[by_submitted_hash])
+    where[where == sorted_hh.size] = 0
+    candidate = by_hash[where]
+    idx = np.full(su.shape[0], -1, dtype=np.intp)
+    for start in range(0, su.shape[0], _CHUNK_ROWS):
+        stop = min(su.shape[0], start + _CHUNK_ROWS)
+        hit = np.flatnonzero(sorted_hh[where[start:stop]] == hs[start:stop]) + start
+        same = (su[hit] == np.take(hu, candidate[hit], axis=0)).all(axis=1)
+        idx[hit[same]] = candidate[hit[same]]
+    return idx
+
+
 def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.intp]:
-    ha = _arrow_text(h, "holdout_ids")
-    sa = _arrow_text(s, "submitted_ids")
-    n_h, n_s = len(ha), len(sa)
-    if not _surely_unique(h):
+    """The order, or every problem with the submitted ids (the path that writes messages)."""
+    n_h, n_s = h.size, s.size
+    idx = _hash_join(h, s) if _surely_unique(h) else None
+    if idx is not None:
+        def submitted_text(pos: NDArray[np.intp]) -> list[str]:
+            return [str(v) for v in s[pos].tolist()]
+
+        def holdout_text(pos: NDArray[np.intp]) -> list[str]:
+            return [str(v) for v in h[pos].tolist()]
+    else:
+        ha = _arrow_text(h, "holdout_ids")
+        sa = _arrow_text(s, "submitted_ids")
         first = pc.index_in(ha, value_set=ha).to_numpy(zero_copy_only=False)
         if not np.array_equal(first, np.arange(n_h)):
             raise ValueError("holdout ids are not unique")
-    idx = pc.fill_null(pc.index_in(sa, value_set=ha), -1).to_numpy(zero_copy_only=False)
-    idx = idx.astype(np.intp)
+        idx = pc.fill_null(pc.index_in(sa, value_set=ha), -1).to_numpy(zero_copy_only=False)
+        idx = idx.astype(np.intp)
+
+        def submitted_text(pos: NDArray[np.intp]) -> list[str]:
+            return sa.take(pa.array(pos, type=pa.int64())).to_pylist()
+
+        def holdout_text(pos: NDArray[np.intp]) -> list[str]:
+            return ha.take(pa.array(pos, type=pa.int64())).to_pylist()
+
     known = idx >= 0
     counts = np.bincount(idx[known], minlength=n_h)
     problems: list[IngestError] = []
     if not known.all():
         pos = np.flatnonzero(~known)
-        sample = sa.take(pa.array(pos[: 50 * MAX_EXAMPLES])).to_pylist()
+        sample = submitted_text(pos[: 50 * MAX_EXAMPLES])
         problems.append(content_error(
             field, int(pos.size), "submitted ids are not in the holdout",
             [show_text(v) for v in _distinct_examples(sample)],
@@ -325,7 +379,7 @@ def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.int
         in_dup[dup_ids] = True
         pos = np.flatnonzero(known & in_dup[np.where(known, idx, 0)])
         sample_pos = pos[: 50 * MAX_EXAMPLES]
-        texts = sa.take(pa.array(sample_pos)).to_pylist()
+        texts = submitted_text(sample_pos)
         times = {t: int(counts[idx[p]]) for t, p in zip(texts, sample_pos.tolist(), strict=True)}
         problems.append(content_error(
             field, int(dup_ids.size),
@@ -338,7 +392,7 @@ def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.int
         # Holdout ids are public (anyone allowed to submit can list them); labels never appear.
         problems.append(content_error(
             field, int(missing.size), "holdout ids have no row in the submission",
-            [show_text(v) for v in ha.take(pa.array(missing[:MAX_EXAMPLES])).to_pylist()],
+            [show_text(v) for v in holdout_text(missing[:MAX_EXAMPLES])],
             hint="send exactly one row for every holdout id",
         ))
     if problems:
@@ -349,7 +403,7 @@ def _exact_order(h: NDArray[Any], s: NDArray[Any], field: str) -> NDArray[np.int
         )
     order = np.empty(n_h, dtype=np.intp)
     order[idx] = np.arange(n_s, dtype=np.intp)
-    if not pc.all(pc.equal(sa.take(pa.array(order)), ha)).as_py():
+    if not np.array_equal(s[order], h):
         raise AssertionError("exact alignment failed its own check")  # cannot happen
     return order
 

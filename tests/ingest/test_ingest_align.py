@@ -229,3 +229,17 @@ def test_cached_holdout_keys_are_reused_and_never_trusted():
     h[5] = "brand-new"
     err = pytest.raises(IngestError, align_ids, h, ids(submitted)).value
     assert err.examples == ['"k5"']  # the submission's k5 is no longer a holdout id
+
+
+def test_an_unknown_id_whose_hash_equals_a_holdout_ids_hash_is_still_unknown(monkeypatch):
+    def length_hash(units):  # equal for any two ids of equal length: collisions on purpose
+        return (units != 0).sum(axis=1).astype(np.uint64) << np.uint64(40)
+
+    monkeypatch.setattr(align_module, "_row_hash", length_hash)
+    holdout = ["a", "bb", "ccc"]
+    err = pytest.raises(IngestError, align_ids, ids(holdout), ids(["ccc", "zz", "a"])).value
+    problems = err.to_problem_errors()
+    assert problems[0]["examples"] == ['"zz"'] and "not in the holdout" in problems[0]["message"]
+    assert problems[1]["examples"] == ['"bb"'] and "no row" in problems[1]["message"]
+    order = align_ids(ids(holdout), ids(["ccc", "bb", "a"]))
+    np.testing.assert_array_equal(order, reference_order(holdout, ["ccc", "bb", "a"]))
