@@ -15,8 +15,9 @@ Four codes, always returned in this order (``FLAG_CODES``):
 Severity rule:
 
 - ``critical``: the score should not be relied on as it stands: a generalization gap with the
-  held-out loss at least double the training loss (``CRITICAL_RELATIVE_GAP``), or underfit
-  with a held-out loss no better than the trivial baseline's (``CRITICAL_BASELINE_RATIO``);
+  held-out loss at least double the training loss (``FlagThresholds.gap_critical_relative``),
+  or underfit with a held-out loss no better than the trivial baseline's
+  (``FlagThresholds.underfit_critical_ratio``);
 - ``warning``: every other flag raised;
 - ``info``: reserved for notes that need no action; none of these four codes emits it.
 
@@ -41,13 +42,6 @@ from .results import Decomposition, Flag
 
 FLAG_CODES = ("generalization_gap", "variance_dominated", "underfit", "seed_instability")
 """Every flag code, in the order flags are returned."""
-
-CRITICAL_RELATIVE_GAP = 1.0
-"""A generalization gap is critical when the held-out loss is at least (1 + this) times the
-training loss."""
-
-CRITICAL_BASELINE_RATIO = 1.0
-"""Underfit is critical when the held-out loss is at least this multiple of the baseline's."""
 
 
 def _num(x: float) -> str:
@@ -115,7 +109,7 @@ def _gap_flag(
     p_value = result["p_value"]
     if not (p_value < thresholds.gap_alpha and relative >= thresholds.gap_min_relative):
         return None
-    severity = "critical" if relative >= CRITICAL_RELATIVE_GAP else "warning"
+    severity = "critical" if relative >= thresholds.gap_critical_relative else "warning"
     how_much = (
         f"{_num(100 * relative)}% above" if math.isfinite(relative) else "above a zero"
     )
@@ -198,7 +192,7 @@ def _underfit_flag(
             f" and its training {loss} loss {_num(train_loss)} is {_num(100 * train_ratio)}% "
             f"of the baseline's {_num(baseline_train_loss)}"
         )
-    severity = "critical" if test_ratio >= CRITICAL_BASELINE_RATIO else "warning"
+    severity = "critical" if test_ratio >= thresholds.underfit_critical_ratio else "warning"
     message = (
         f"Held-out {loss} loss {_num(test_loss)} is {_num(100 * test_ratio)}% of the trivial "
         f"baseline's {_num(baseline_test_loss)}{both}: the model has learned little "
@@ -307,8 +301,6 @@ def overfitting_flags(
 
 
 __all__ = [
-    "CRITICAL_BASELINE_RATIO",
-    "CRITICAL_RELATIVE_GAP",
     "FLAG_CODES",
     "overfitting_flags",
     "welch_greater",

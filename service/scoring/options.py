@@ -20,6 +20,10 @@ class FlagThresholds:
       baseline's loss (train mean for regression, class frequencies for classification).
     - ``instability_cv``: coefficient of variation over seeds of the primary loss above this
       flags instability across seeds.
+    - ``gap_critical_relative``: a flagged gap is ``critical`` (not ``warning``) when the
+      held-out loss is at least (1 + this) times the training loss.
+    - ``underfit_critical_ratio``: a flagged underfit is ``critical`` when the held-out loss is
+      at least this multiple of the baseline's.
     """
 
     gap_alpha: float = 0.01
@@ -27,6 +31,8 @@ class FlagThresholds:
     variance_share: float = 0.5
     underfit_ratio: float = 0.9
     instability_cv: float = 0.10
+    gap_critical_relative: float = 1.0
+    underfit_critical_ratio: float = 1.0
 
 
 @dataclass(frozen=True)

@@ -22,9 +22,9 @@ import numpy as np
 class Interval:
     """A two-sided confidence interval for one metric.
 
-    ``method`` names how it was computed (``normal``, ``wilson``, ``delta``,
-    ``order_statistic``, ``delong``, ``bootstrap_percentile``, ``bootstrap_bca``,
-    ``seed_mean_conservative``, ``none``); ``note`` says why when no interval
+    ``method`` names how it was computed (``normal``, ``t``, ``wilson``, ``delta``,
+    ``order_statistic``, ``delong``, ``newcombe_paired``, ``bootstrap_percentile``,
+    ``bootstrap_bca``, ``seed_mean_conservative``, ``none``); ``note`` says why when no interval
     can be given (then ``low`` and ``high`` are NaN).
     """
 

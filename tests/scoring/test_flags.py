@@ -77,6 +77,25 @@ def test_gap_fires_on_a_deep_tree_with_scipy_welch_p_value(diabetes) -> None:
         assert format(gap.evidence[key], ".4g") in gap.message
 
 
+def test_critical_severity_thresholds_are_the_callers(diabetes) -> None:
+    test, train = _row_losses(DecisionTreeRegressor(max_depth=6, random_state=0), diabetes)
+    relative = (test.mean() - train.mean()) / train.mean()
+
+    def severity(critical_relative: float) -> str:
+        thresholds = FlagThresholds(gap_critical_relative=critical_relative)
+        [gap] = overfitting_flags(
+            loss="squared",
+            test_row_losses=test,
+            train_row_losses=train,
+            seed_losses=[test.mean()],
+            thresholds=thresholds,
+        )
+        return gap.severity
+
+    assert severity(relative * 0.99) == "critical"
+    assert severity(relative * 1.01) == "warning"
+
+
 def test_gap_is_silent_on_a_linear_model_and_obeys_thresholds(diabetes) -> None:
     test, train = _row_losses(LinearRegression(), diabetes)
     kwargs = dict(loss="squared", test_row_losses=test, train_row_losses=train, seed_losses=[1.0])
