@@ -13,7 +13,14 @@ import os
 import time
 from typing import Any
 
-from service.settings import load_settings
+# One BLAS/OpenMP thread per worker process (common practice for multi-process servers): the
+# workers are the parallelism, and small BLAS calls in a busy multi-threaded pool stall the
+# scoring core by an order of magnitude (measured with tests/perf/bench_binary.py). Set before
+# anything imports numpy; an operator's explicit value wins.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+from service.settings import load_settings  # noqa: E402
 
 _settings = load_settings(os.environ)
 
