@@ -5,7 +5,8 @@ Fast path (text arrays of fixed width, what ``id_array`` and the table readers r
 1. view each id as a row of UTF-32 code units (two per 64-bit word) and hash the rows to
    64-bit integers (a random linear combination of the words, modulo 2**64);
 2. keep the hash's high bits and the row index in the low bits of one uint64 key and sort
-   the keys of each side (``np.sort`` of uint64 is SIMD-accelerated, unlike argsort);
+   the keys of each side (one ``np.sort`` of uint64: about three times faster than an
+   ``argsort`` of the hashes here);
 3. equal multisets of ids give equal sequences of hash prefixes: pair rows position by
    position to get a candidate order;
 4. verify the candidate exactly, code unit by code unit. Rows whose hashes collide may be
