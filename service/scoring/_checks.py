@@ -33,25 +33,38 @@ def as_targets(y_true: ArrayLike, *, name: str = "y_true") -> NDArray[np.float64
         raise ScoringInputError(name, f"expected shape (n,), got {y.shape}")
     if y.size == 0:
         raise ScoringInputError(name, "needs at least one row")
-    if not np.isfinite(y).all():
-        raise ScoringInputError(name, "contains NaN or infinity")
+    require_finite(y, name)
     return y
 
 
 def as_seed_predictions(
-    predictions: ArrayLike, n_rows: int, *, name: str = "predictions"
+    predictions: ArrayLike, n_rows: int, *, name: str = "predictions", check_finite: bool = True
 ) -> NDArray[np.float64]:
-    """Return predictions as a (K, n) float64 array; a 1-d input is one seed."""
+    """Return predictions as a (K, n) float64 array; a 1-d input is one seed.
+
+    ``check_finite=False`` skips the elementwise NaN/infinity check (a full read of the
+    array) for callers that take sums over every value anyway: a NaN or infinite input makes
+    such a sum non-finite, and only then need they call ``require_finite`` to raise the
+    same error this function would.
+    """
     p = np.asarray(predictions, dtype=np.float64)
     if p.ndim == 1:
         p = p[np.newaxis, :]
     if p.ndim != 2 or p.shape[1] != n_rows:
-        raise ScoringInputError(name, f"expected shape (n,) or (K, n) with n={n_rows}, got {p.shape}")
+        raise ScoringInputError(
+            name, f"expected shape (n,) or (K, n) with n={n_rows}, got {p.shape}"
+        )
     if p.shape[0] == 0:
         raise ScoringInputError(name, "needs at least one seed")
-    if not np.isfinite(p).all():
-        raise ScoringInputError(name, "contains NaN or infinity")
+    if check_finite:
+        require_finite(p, name)
     return p
+
+
+def require_finite(values: NDArray[np.float64], name: str) -> None:
+    """Raise ``ScoringInputError(name, ...)`` if any value is NaN or infinite."""
+    if not np.isfinite(values).all():
+        raise ScoringInputError(name, "contains NaN or infinity")
 
 
 def as_class_indices(
@@ -80,7 +93,8 @@ def as_seed_probabilities(
         q = q[np.newaxis]
     if q.ndim != 3 or q.shape[1:] != (n_rows, n_classes):
         raise ScoringInputError(
-            name, f"expected shape (n, C) or (K, n, C) with n={n_rows}, C={n_classes}, got {q.shape}"
+            name,
+            f"expected shape (n, C) or (K, n, C) with n={n_rows}, C={n_classes}, got {q.shape}",
         )
     low, high = float(q.min()), float(q.max())  # NaN propagates; two reductions, no temporaries
     if not (np.isfinite(low) and np.isfinite(high)):

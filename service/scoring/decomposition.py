@@ -155,11 +155,24 @@ def squared_loss_decomposition(
     ``sum_k (p_k - pbar)`` vanishes.
     """
     y, p = _as_squared_inputs(y_true, predictions)
+    w = as_weights(sample_weight, y.shape[0])
+    sigma2 = _as_noise_variance(noise_variance)
+    return _squared_loss_checked(y, p, w, sigma2)
+
+
+def _squared_loss_checked(
+    y: NDArray[np.float64],
+    p: NDArray[np.float64],
+    w: NDArray[np.float64] | None,
+    sigma2: float | None,
+) -> Decomposition:
+    """``squared_loss_decomposition`` on validated arrays, by the direct two-pass method.
+
+    ``y`` (n, C), ``p`` (K, n, C), ``w`` (n,) or None, all finite; ``sigma2`` checked by
+    ``_as_noise_variance``. For callers that have validated their input already.
+    """
     n, n_cols = y.shape
     n_seeds = p.shape[0]
-    w = as_weights(sample_weight, n)
-    sigma2 = _as_noise_variance(noise_variance)
-
     flat_p = p.reshape(n_seeds, n * n_cols)
     flat_y = y.reshape(n * n_cols)
     block = _block_rows(n_seeds * n_cols)
@@ -169,6 +182,8 @@ def squared_loss_decomposition(
     err_buf = np.empty(width)
     sq_buf = np.empty(width)
 
+    # Sums by einsum and ufunc reductions, not BLAS (np.dot / np.vdot): a BLAS call per
+    # block stalls when its threads compete for a busy machine's cores.
     spread_sum = 0.0  # sum over rows (weighted) of sum over seeds and columns of (p - pbar)^2
     error_sum = 0.0  # sum over rows (weighted) of sum over columns of (pbar - y)^2
     for start in range(0, n, block):
@@ -187,8 +202,8 @@ def squared_loss_decomposition(
         mean += first
         np.subtract(mean, flat_y[lo:hi], out=err)
         if w is None:
-            spread_sum += float(np.vdot(centred, centred))
-            error_sum += float(np.dot(err, err))
+            spread_sum += float(np.einsum("km,km->", centred, centred))
+            error_sum += float(np.einsum("m,m->", err, err))
             continue
         weights = w[start:stop]
         np.square(centred, out=centred)
@@ -197,12 +212,16 @@ def squared_loss_decomposition(
         if n_cols > 1:
             spread = spread.reshape(-1, n_cols).sum(axis=1)
             err = err.reshape(-1, n_cols).sum(axis=1)
-        spread_sum += float(np.dot(spread, weights))
-        error_sum += float(np.dot(err, weights))
+        spread_sum += float(np.einsum("i,i->", spread, weights))
+        error_sum += float(np.einsum("i,i->", err, weights))
 
     total_weight = float(n) if w is None else float(w.sum())
     variance = spread_sum / (n_seeds * total_weight)
     ensemble_loss = error_sum / total_weight
+    return _squared_result(ensemble_loss, variance, sigma2)
+
+
+def _squared_result(ensemble_loss: float, variance: float, sigma2: float | None) -> Decomposition:
     expected_loss = ensemble_loss + variance
     bias = ensemble_loss if sigma2 is None else ensemble_loss - sigma2
     return Decomposition(
@@ -214,6 +233,63 @@ def squared_loss_decomposition(
         ensemble_loss=ensemble_loss,
         noise=sigma2,
     )
+
+
+IDENTITY_TOLERANCE = 1e-10
+"""Largest relative error allowed for the variance taken as a difference of two losses."""
+
+
+def _squared_loss_from_losses(
+    mean_seed_loss: float,
+    ensemble_loss: float,
+    sigma2: float | None,
+    *,
+    n_seeds: int,
+    loss_relative_error: float,
+    residual_error: float,
+) -> Decomposition | None:
+    """The squared-loss decomposition from losses already computed, or None if inaccurate.
+
+    The variance over seeds equals, exactly in real arithmetic, the mean over seeds of the
+    loss minus the loss of the seed mean (Geman et al. 1992: the cross term vanishes), so a
+    caller that has both losses gets the decomposition without another pass over the (K, n)
+    predictions. In floating point the difference cancels, so this returns None, and the
+    caller must use the direct two-pass method (``_squared_loss_checked``), unless the
+    difference is provably accurate to ``IDENTITY_TOLERANCE``:
+
+    Let A = ``mean_seed_loss`` and B = ``ensemble_loss`` as computed, V = A - B.
+    ``loss_relative_error`` (g) bounds the relative error of A and of B from forming the
+    residuals, squaring and summing (each is a sum of non-negative terms, so a relative
+    bound holds: about (log2(block) + number of blocks + a few) units of roundoff for
+    blockwise pairwise sums). ``residual_error`` (h) bounds the absolute error of each row's
+    seed-mean residual pbar - y from rounding in the seed mean itself (about K units of
+    roundoff times the largest |prediction|: that error scales with the predictions' offset,
+    not with the residual). By Cauchy-Schwarz, sum_i w_i |e_i| h <= W h sqrt(B), so
+
+        |error of V| <= g (A + B) + 2 h sqrt(B) + h^2 + eps |V|.
+
+    The identity is used when twice that bound is at most ``IDENTITY_TOLERANCE`` times V.
+    With one seed (``n_seeds == 1``) the variance is 0 and the ensemble is that seed.
+    This is stricter than a plain V >= 1e-6 A rule, which it implies (g >= 20 eps gives
+    V >= 4e-5 A): with g about 1e-14 (a million rows) a variance of 1e-6 A could carry a
+    relative error near 1e-8 in the worst case, and a large common offset of the predictions
+    (NIST's NumAcc sets: 1e7 spread by 0.1) makes h dominate; both go to the direct method.
+    """
+    a, b = mean_seed_loss, ensemble_loss
+    if n_seeds == 1:  # one seed: no spread, and the direct method's variance is exactly 0
+        return _squared_result(b, 0.0, sigma2) if math.isfinite(b) else None
+    variance = a - b
+    if not (math.isfinite(a) and math.isfinite(b) and variance > 0.0):
+        return None
+    bound = (
+        loss_relative_error * (a + b)
+        + 2.0 * residual_error * math.sqrt(b)
+        + residual_error * residual_error
+        + _EPS * variance
+    )
+    if not 2.0 * bound <= IDENTITY_TOLERANCE * variance:
+        return None
+    return _squared_result(b, variance, sigma2)
 
 
 # ----------------------------------------------------------------------------- zero-one

@@ -61,11 +61,19 @@ def normal_interval(
     ``(sum w)^2 / sum w^2`` and the weighted standard deviation.
     """
     mean, sd, n_eff = mean_sd_effective_n(values, weights)
-    if n_eff < 2 or not math.isfinite(sd):
-        if weights is None:
+    return normal_interval_from_moments(mean, sd, n_eff, level, weighted=weights is not None)
+
+
+def normal_interval_from_moments(
+    mean: float, sd: float, n_effective: float, level: float = 0.95, *, weighted: bool = False
+) -> Interval:
+    """``normal_interval`` from moments already computed (as ``mean_sd_effective_n`` gives
+    them), for callers that get them from sums taken anyway; the same reasons for none."""
+    if n_effective < 2 or not math.isfinite(sd):
+        if not weighted:
             return no_interval(level, "needs at least two rows")
         return no_interval(level, "needs an effective sample size of at least two rows")
-    return normal_from_moments(mean, sd, n_eff, level)
+    return normal_from_moments(mean, sd, n_effective, level)
 
 
 def wilson_interval(successes: float, total: float, level: float = 0.95) -> Interval:
@@ -187,14 +195,31 @@ def mean_sd_effective_n(
         mean = float(values.mean())
         if n < 2:
             return mean, math.nan, float(n)
-        return mean, math.sqrt(_sum_sq_dev(values, mean, None) / (n - 1)), float(n)
+        ssd = _sum_sq_dev(values, mean, None)
+        return mean, sd_from_sum_of_squares(ssd, float(n), float(n), False), float(n)
     wsum = float(weights.sum())
     mean = float(np.einsum("i,i->", weights, values)) / wsum
     n_eff = wsum * wsum / float(np.einsum("i,i->", weights, weights))
     if n_eff < 2:
         return mean, math.nan, n_eff
-    var = _sum_sq_dev(values, mean, weights) / wsum * n_eff / (n_eff - 1.0)
-    return mean, math.sqrt(var), n_eff
+    ssd = _sum_sq_dev(values, mean, weights)
+    return mean, sd_from_sum_of_squares(ssd, wsum, n_eff, True), n_eff
+
+
+def sd_from_sum_of_squares(
+    ssd: float, weight_sum: float, n_effective: float, weighted: bool
+) -> float:
+    """The sd of ``mean_sd_effective_n`` from ssd = sum_i w_i (v_i - mean)^2.
+
+    Unweighted (``weight_sum`` = ``n_effective`` = n): sqrt(ssd / (n - 1)). Weighted: the
+    weighted variance ssd / sum w times Kish's small-sample factor n_eff / (n_eff - 1).
+    NaN below an effective n of 2.
+    """
+    if n_effective < 2:
+        return math.nan
+    if not weighted:
+        return math.sqrt(ssd / (n_effective - 1.0))
+    return math.sqrt(ssd / weight_sum * n_effective / (n_effective - 1.0))
 
 
 def linearized_interval(
@@ -240,16 +265,36 @@ def delta_ratio_interval(
         n_eff = wsum * wsum / float(np.einsum("i,i->", weights, weights))
         a_mean = float(np.einsum("i,i->", weights, numerator_values)) / wsum
         b_mean = float(np.einsum("i,i->", weights, denominator_values)) / wsum
-    if not b_mean > 0:
-        return no_interval(level, "the denominator's mean is zero")
-    if n_eff < 2:
-        return no_interval(level, "needs an effective sample size of at least two rows")
+    if not b_mean > 0 or n_eff < 2:
+        return delta_ratio_from_sums(a_mean, b_mean, math.nan, wsum, n_eff, False, level)
     ratio = a_mean / b_mean
     centre = a_mean - ratio * b_mean  # zero up to rounding
     ssd = _sum_sq_dev(numerator_values, centre, weights, denominator_values, ratio)
-    scale = (n_eff - 1.0) if weights is None else wsum * (n_eff - 1.0) / n_eff
+    return delta_ratio_from_sums(a_mean, b_mean, ssd, wsum, n_eff, weights is not None, level)
+
+
+def delta_ratio_from_sums(
+    a_mean: float,
+    b_mean: float,
+    ssd: float,
+    weight_sum: float,
+    n_effective: float,
+    weighted: bool,
+    level: float = 0.95,
+) -> Interval:
+    """``delta_ratio_interval`` from its moments, for callers that have them from sums.
+
+    ``ssd`` = sum_i w_i (a_i - R b_i - c)^2 with R = a_mean / b_mean and c = a_mean -
+    R b_mean (zero up to rounding); ``weight_sum`` = n and ``n_effective`` = n unweighted.
+    """
+    if not b_mean > 0:
+        return no_interval(level, "the denominator's mean is zero")
+    if n_effective < 2:
+        return no_interval(level, "needs an effective sample size of at least two rows")
+    ratio = a_mean / b_mean
+    scale = (n_effective - 1.0) if not weighted else weight_sum * (n_effective - 1.0) / n_effective
     sd = math.sqrt(ssd / scale) / b_mean
-    return normal_from_moments(ratio, sd, n_eff, level, "delta")
+    return normal_from_moments(ratio, sd, n_effective, level, "delta")
 
 
 def monotone_interval(

@@ -45,13 +45,21 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ._checks import ScoringInputError, as_seed_predictions, as_targets, as_weights
+from ._checks import (
+    ScoringInputError,
+    as_seed_predictions,
+    as_targets,
+    as_weights,
+    require_finite,
+)
 from .intervals import (
+    delta_ratio_from_sums,
     delta_ratio_interval,
     monotone_interval,
     no_interval,
-    normal_interval,
+    normal_interval_from_moments,
     order_statistic_ranks,
+    sd_from_sum_of_squares,
     seed_mean_interval,
     select_order_statistics,
     z_value,
@@ -80,6 +88,10 @@ _BLOCK_VALUES = 1 << 17
 _MIN_BLOCK_ROWS = 1024
 """Lower bound on rows per block, so many seeds do not shrink blocks to a few rows."""
 
+_ALIGN_BYTES = 64
+"""Scratch buffers start on a cache line, and so does each seed's row of a block: binary
+ufuncs writing to a misaligned output ran about half as fast (measured, AVX-512)."""
+
 _BRACKET_MIN_ROWS = 1 << 16
 """From this many rows on, the median is selected through a sampled bracket."""
 
@@ -100,6 +112,21 @@ _EV_EXACT_SHARE = 0.5
 """Explained variance's numerator is var(r) = mean(r^2) - mean(r)^2; when mean(r)^2 is at
 least this share of mean(r^2) the subtraction could lose digits, so that seed is recomputed
 with scikit-learn's two-pass formula instead."""
+
+_UNIT_ROUNDOFF = float(np.finfo(np.float64).eps) / 2
+"""Unit roundoff u of float64 (relative error of one rounded operation)."""
+
+_OVERFLOW_MESSAGE = (
+    "squared errors overflow float64: some predictions and targets differ by "
+    "more than about 1e154; rescale the targets"
+)
+
+
+def _aligned_empty(size: int) -> NDArray[np.float64]:
+    """An uninitialised float64 buffer of ``size`` values starting on ``_ALIGN_BYTES``."""
+    raw = np.empty(size + _ALIGN_BYTES // 8)
+    skip = (-raw.ctypes.data % _ALIGN_BYTES) // 8
+    return raw[skip : skip + size]
 
 
 # --------------------------------------------------------------------------------------
@@ -122,6 +149,7 @@ class _TargetStats:
     weighted_inverse_scale: NDArray[np.float64]  # w / max(|y|, eps) (or the same array)
     positive: NDArray[np.bool_] | None  # rows of positive weight (weights only)
     zero_targets: int
+    max_abs: float  # max |y|
 
 
 def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _TargetStats:
@@ -138,6 +166,7 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
         weight_sum = float(w.sum())
     abs_y = np.abs(y)
     zero_targets = int(np.count_nonzero(abs_y == 0.0))
+    max_abs = float(abs_y.max())
     inverse_scale = np.maximum(abs_y, MAPE_EPSILON, out=abs_y)
     np.divide(1.0, inverse_scale, out=inverse_scale)
     return _TargetStats(
@@ -152,6 +181,7 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
         weighted_inverse_scale=inverse_scale if w is None else w * inverse_scale,
         positive=None if w is None else w > 0,
         zero_targets=zero_targets,
+        max_abs=max_abs,
     )
 
 
@@ -171,12 +201,14 @@ class _PassResult:
     row_squared: NDArray[np.float64] | None  # (n,) sum over the K seeds of r^2
     row_absolute: NDArray[np.float64] | None  # (n,) sum over the K seeds of |r|
     ensemble: NDArray[np.float64] | None  # (n,) the seed-averaged prediction
+    squared_relative_error: float  # bound on the relative rounding error of sum_squared
 
 
 def _fused_pass(
     ts: _TargetStats,
     predictions: NDArray[np.float64],
     *,
+    name: str = "predictions",
     ensemble: bool = False,
     median: bool = True,
     median_interval_level: float | None = None,
@@ -187,16 +219,21 @@ def _fused_pass(
 
     For each block of rows, the residuals r = p - y of every seed (and, with ``ensemble``,
     of the seed-averaged prediction, formed from the same block) are made once into one
-    small 2-d buffer, and every sum, the per-row accumulations over seeds and the median's
-    candidates are taken while it is in cache. The (K, n) predictions are read once; no
-    temporary of n rows per seed is made.
+    small 2-d buffer that stays in cache while it is turned into |r| and then r^2 in place:
+    every sum, the per-row accumulations over seeds and the median's candidates are taken
+    from it. The (K, n) predictions are read once; no temporary of n rows per seed is made.
+
+    ``predictions`` need not have been checked for NaN or infinity: any such value makes
+    its seed's sum of squares non-finite, and only then is the input checked elementwise
+    (``ScoringInputError`` on ``name``). Non-finite sums of finite input (overflow) are
+    returned as they are, for the caller to judge.
     """
     y, w = ts.y, ts.weights
     n_seeds, n = predictions.shape
     n_rows = n_seeds + int(ensemble)
     step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_rows))
-    resid = np.empty((n_rows, step))
-    squares = np.empty((n_rows, step))
+    step = min(n, -(-step // 8) * 8)  # whole cache lines per row of a block
+    storage = _aligned_empty(n_rows * step)
     s_r = np.zeros(n_rows)
     s_sq = np.zeros(n_rows)
     s_abs = np.zeros(n_rows)
@@ -217,30 +254,26 @@ def _fused_pass(
         else None
     )
 
+    n_blocks = 0
     for start in range(0, n, step):
+        n_blocks += 1
         stop = min(start + step, n)
         sl = slice(start, stop)
-        r = resid[:, : stop - start]
-        sq = squares[:, : stop - start]
+        a = storage[: n_rows * (stop - start)].reshape(n_rows, stop - start)
         block = predictions[:, sl]
-        np.subtract(block, y[sl], out=r[:n_seeds])
+        np.subtract(block, y[sl], out=a[:n_seeds])
         if pbar is not None:
             mean_block = np.add.reduce(block, axis=0, out=pbar[sl])
             mean_block /= n_seeds  # the same operations as predictions.mean(axis=0)
-            np.subtract(mean_block, y[sl], out=r[n_seeds])
-        np.multiply(r, r, out=sq)
+            np.subtract(mean_block, y[sl], out=a[n_seeds])
         if w is None:
-            s_r += r.sum(axis=1)
-            s_sq += sq.sum(axis=1)
+            s_r += np.add.reduce(a, axis=1)
         else:
-            s_r += np.einsum("kc,c->k", r, w[sl])
-            s_sq += np.einsum("kc,c->k", sq, w[sl])
-        if rows_sq is not None:
-            np.add.reduce(sq[:n_seeds], axis=0, out=rows_sq[sl])
-        a = np.abs(r, out=r)
+            s_r += np.einsum("kc,c->k", a, w[sl])
+        np.abs(a, out=a)  # a = |r| from here
         if w is None:
-            s_abs += a.sum(axis=1)
-            np.maximum(m_abs, a.max(axis=1), out=m_abs)
+            s_abs += np.add.reduce(a, axis=1)
+            np.maximum(m_abs, np.maximum.reduce(a, axis=1), out=m_abs)
         else:
             s_abs += np.einsum("kc,c->k", a, w[sl])
             np.maximum(m_abs, np.max(a, axis=1, where=ts.positive[sl], initial=0.0), out=m_abs)
@@ -249,6 +282,15 @@ def _fused_pass(
             np.add.reduce(a[:n_seeds], axis=0, out=rows_abs[sl])
         if selector is not None:
             selector.add_block(a)
+        np.multiply(a, a, out=a)  # a = r^2 from here (|r|^2 is r^2 to the bit)
+        if rows_sq is not None:
+            np.add.reduce(a[:n_seeds], axis=0, out=rows_sq[sl])
+        if w is not None:
+            a *= w[sl]
+        s_sq += np.add.reduce(a, axis=1)  # pairwise: see squared_relative_error
+
+    if not np.isfinite(s_sq).all():
+        require_finite(predictions, name)  # NaN or infinity in the input: the named error
 
     def prediction_row(k: int) -> NDArray[np.float64]:
         if k < n_seeds:
@@ -274,6 +316,13 @@ def _fused_pass(
                 med[k], med_low[k], med_high[k] = _weighted_median(
                     scratch, w, median_interval_level
                 )
+    # Each sum of squares: r = p - y and r^2 (and w r^2) round once each (4 u), numpy's
+    # pairwise sum of a block's row errs by at most about (log2(step) + 16) u (16 terms
+    # summed serially per accumulator, then pairwise), and the block sums are added
+    # serially (n_blocks u); a few u more for the means formed from them.
+    squared_relative_error = (
+        math.ceil(math.log2(max(step, 2))) + n_blocks + n_rows + 24
+    ) * _UNIT_ROUNDOFF
     return _PassResult(
         sum_residual=s_r,
         sum_squared=s_sq,
@@ -286,6 +335,7 @@ def _fused_pass(
         row_squared=rows_sq,
         row_absolute=rows_abs,
         ensemble=pbar,
+        squared_relative_error=squared_relative_error,
     )
 
 
@@ -300,6 +350,10 @@ class _BracketSelector:
     it miss (probability about 1e-6 per seed), that seed's |r| is recomputed and partitioned
     exactly (``select_order_statistics``). Either way the result is exact; only time differs.
     Below ``_BRACKET_MIN_ROWS`` rows the bracket is the whole line: every value is kept.
+
+    Counting uses a (rows, step) uint8 tally of the "below" masks, added up every 255
+    blocks, and the kept values are found with one ``flatnonzero`` per block: both much
+    cheaper than ``count_nonzero(..., axis=1)`` and boolean indexing of a 2-d block.
     """
 
     def __init__(
@@ -333,23 +387,38 @@ class _BracketSelector:
         self.lo = lo[:, np.newaxis]
         self.hi = hi[:, np.newaxis]
         self.below = np.zeros(n_rows, dtype=np.int64)
-        self.below_mask = np.empty((n_rows, step), dtype=bool)
-        self.keep_mask = np.empty((n_rows, step), dtype=bool)
+        self.tally = np.zeros((n_rows, step), dtype=np.uint8)
+        self.tallied = 0  # blocks in the tally since it was last added up
+        self.below_mask = np.empty(n_rows * step, dtype=bool)
+        self.keep_mask = np.empty(n_rows * step, dtype=bool)
+        self.row_bounds = np.arange(n_rows + 1)
         self.parts: list[tuple[NDArray[np.float64], NDArray[np.intp]]] = []
 
     def add_block(self, a: NDArray[np.float64]) -> None:
-        m = a.shape[1]
-        below = np.less(a, self.lo, out=self.below_mask[:, :m])
-        self.below += np.count_nonzero(below, axis=1)
-        keep = np.less_equal(a, self.hi, out=self.keep_mask[:, :m])
+        """Take in one block of |r|, shape (rows, m), C-contiguous."""
+        n_rows, m = a.shape
+        below = np.less(a, self.lo, out=self.below_mask[: n_rows * m].reshape(n_rows, m))
+        tally = self.tally[:, :m]
+        np.add(tally, below.view(np.uint8), out=tally)
+        self.tallied += 1
+        if self.tallied == 255:  # a uint8 count holds 255 blocks
+            self._add_up_tally()
+        keep = np.less_equal(a, self.hi, out=self.keep_mask[: n_rows * m].reshape(n_rows, m))
         np.not_equal(keep, below, out=keep)  # lo <= a <= hi (a < lo implies a <= hi)
-        counts = np.count_nonzero(keep, axis=1)
-        offsets = np.concatenate(([0], np.cumsum(counts)))
-        self.parts.append((a[keep], offsets))
+        where = np.flatnonzero(keep)
+        offsets = np.searchsorted(where, self.row_bounds * m)
+        self.parts.append((a.reshape(-1)[where], offsets))
+
+    def _add_up_tally(self) -> None:
+        self.below += self.tally.sum(axis=1, dtype=np.int64)
+        self.tally.fill(0)
+        self.tallied = 0
 
     def finish_row(
         self, k: int, exact_values: Callable[[], NDArray[np.float64]]
     ) -> dict[int, float]:
+        if self.tallied:
+            self._add_up_tally()
         below = int(self.below[k])
         kept = np.concatenate([vals[off[k] : off[k + 1]] for vals, off in self.parts])
         if below <= self.ranks[0] and below + kept.size > self.ranks[-1]:
@@ -503,7 +572,7 @@ def regression_metrics(
         errors, 1 for ``r2`` and ``explained_variance``).
     """
     y = as_targets(y_true)
-    p = as_seed_predictions(predictions, y.size)
+    p = as_seed_predictions(predictions, y.size, check_finite=False)  # the pass checks
     w = as_weights(sample_weight, y.size)
     with np.errstate(over="ignore", invalid="ignore"):  # overflowing residuals give inf
         ts = _target_stats(y, w)
@@ -518,7 +587,7 @@ def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[
     storage work on these per-row values.
     """
     y = as_targets(y_true)
-    p = as_seed_predictions(predictions, y.size)
+    p = as_seed_predictions(predictions, y.size, check_finite=False)  # the pass checks
     with np.errstate(over="ignore", invalid="ignore"):
         ts = _target_stats(y, None)
         res = _fused_pass(ts, p, median=False, row_squared=True)
@@ -590,6 +659,37 @@ def regression_report(
         metric (see ``_intervals``); ``details``: ``mape_zero_targets``, per-seed values,
         and notes on any convention that was applied.
     """
+    report, _ = _regression_report(
+        y_true,
+        predictions,
+        sample_weight=sample_weight,
+        train_y_true=train_y_true,
+        train_predictions=train_predictions,
+        noise_variance=noise_variance,
+        options=options,
+        with_intervals=True,
+    )
+    return report
+
+
+def regression_report_with_row_losses(
+    y_true: ArrayLike,
+    predictions: ArrayLike,
+    *,
+    sample_weight: ArrayLike | None = None,
+    train_y_true: ArrayLike | None = None,
+    train_predictions: ArrayLike | None = None,
+    noise_variance: float | None = None,
+    options: ScoringOptions = ScoringOptions(),  # noqa: B008 (frozen, immutable)
+) -> tuple[Report, NDArray[np.float64]]:
+    """``regression_report`` and ``regression_row_losses`` from one pass, for the service.
+
+    The service stores the per-row losses and returns the report; the report computes the
+    row losses anyway, so this saves a second pass over the predictions. The row losses,
+    shape (n,), are exactly (to the bit) what ``regression_row_losses(y_true, predictions)``
+    returns. They are kept out of ``Report`` on purpose: a report goes to users, who must
+    never see per-row values of the held-out rows.
+    """
     return _regression_report(
         y_true,
         predictions,
@@ -612,8 +712,9 @@ def _regression_report(
     noise_variance: float | None,
     options: ScoringOptions,
     with_intervals: bool,
-) -> Report:
-    """``regression_report`` with a switch to leave out the intervals (for the benchmark).
+) -> tuple[Report, NDArray[np.float64]]:
+    """``regression_report_with_row_losses`` with a switch to leave out the intervals (for
+    the benchmark).
 
     Residuals too large for float64 give infinite metrics (as in scikit-learn) without
     floating-point warnings.
@@ -631,6 +732,38 @@ def _regression_report(
         )
 
 
+def _decomposition(
+    ts: _TargetStats,
+    predictions: NDArray[np.float64],
+    res: _PassResult,
+    sigma2: float | None,
+) -> Decomposition:
+    """The squared-loss decomposition from the pass's sums when that is provably accurate
+    (``decomposition._squared_loss_from_losses``), else by the direct two-pass method."""
+    from .decomposition import _squared_loss_checked, _squared_loss_from_losses
+
+    n_seeds = predictions.shape[0]
+    wsum = ts.weight_sum
+    mean_seed_loss = float(res.sum_squared[:n_seeds].sum()) / (n_seeds * wsum)
+    ensemble_loss = float(res.sum_squared[n_seeds]) / wsum
+    # |p| <= |y| + |r| bounds every prediction; forming the seed mean pbar = sum_k p_k / K
+    # (serial sum, one division) errs by at most K u max|p| per row
+    largest = (ts.max_abs + float(res.max_absolute[:n_seeds].max())) * (1.0 + 1e-12)
+    found = _squared_loss_from_losses(
+        mean_seed_loss,
+        ensemble_loss,
+        sigma2,
+        n_seeds=n_seeds,
+        loss_relative_error=res.squared_relative_error,
+        residual_error=n_seeds * _UNIT_ROUNDOFF * largest,
+    )
+    if found is not None:
+        return found
+    return _squared_loss_checked(
+        ts.y[:, np.newaxis], predictions[:, :, np.newaxis], ts.weights, sigma2
+    )
+
+
 def _report(
     y_true: ArrayLike,
     predictions: ArrayLike,
@@ -641,17 +774,18 @@ def _report(
     noise_variance: float | None,
     options: ScoringOptions,
     with_intervals: bool,
-) -> Report:
-    from .decomposition import squared_loss_decomposition
+) -> tuple[Report, NDArray[np.float64]]:
+    from .decomposition import _as_noise_variance
     from .flags import overfitting_flags
 
     y = as_targets(y_true)
     n = y.size
-    p = as_seed_predictions(predictions, n)
+    p = as_seed_predictions(predictions, n, check_finite=False)  # _fused_pass checks
     w = as_weights(sample_weight, n)
     if (train_y_true is None) != (train_predictions is None):
         missing = "train_predictions" if train_predictions is None else "train_y_true"
         raise ScoringInputError(missing, "train_y_true and train_predictions go together")
+    sigma2 = _as_noise_variance(noise_variance)
     n_seeds = p.shape[0]
     level = options.level
     ts = _target_stats(y, w)
@@ -665,12 +799,8 @@ def _report(
             row_squared=True,
             row_absolute=with_intervals,
         )
-        if not np.isfinite(res.sum_squared).all():
-            raise ScoringInputError(
-                "predictions",
-                "squared errors overflow float64: some predictions and targets differ by "
-                "more than about 1e154; rescale the targets",
-            )
+        if not np.isfinite(res.sum_squared).all():  # finite input (the pass checked it)
+            raise ScoringInputError("predictions", _OVERFLOW_MESSAGE)
         rows = _rows_of(p, res)
         per_seed = _metrics_from_pass(ts, res, rows, slice(0, n_seeds))
         ensemble = {
@@ -686,15 +816,13 @@ def _report(
         baseline_centre = ts.mean
         if train_y_true is not None:
             ty = as_targets(train_y_true, name="train_y_true")
-            tp = as_seed_predictions(train_predictions, ty.size, name="train_predictions")
+            tp = as_seed_predictions(
+                train_predictions, ty.size, name="train_predictions", check_finite=False
+            )
             tts = _target_stats(ty, None)
-            tres = _fused_pass(tts, tp, row_squared=True)
+            tres = _fused_pass(tts, tp, name="train_predictions", row_squared=True)
             if not np.isfinite(tres.sum_squared).all():
-                raise ScoringInputError(
-                    "train_predictions",
-                    "squared errors overflow float64: some predictions and targets differ by "
-                    "more than about 1e154; rescale the targets",
-                )
+                raise ScoringInputError("train_predictions", _OVERFLOW_MESSAGE)
             train_scores = _headline(_metrics_from_pass(tts, tres, _rows_of(tp, tres)))
             assert tres.row_squared is not None
             train_row_losses = np.divide(tres.row_squared, tp.shape[0], out=tres.row_squared)
@@ -707,9 +835,7 @@ def _report(
             baseline_test_loss = float(np.average(dev * dev, weights=w))
 
     scores = _headline(per_seed)
-    decomposition: Decomposition = squared_loss_decomposition(
-        y, p, sample_weight=w, noise_variance=noise_variance
-    )
+    decomposition = _decomposition(ts, p, res, sigma2)
     flags = overfitting_flags(
         loss="mse",
         test_row_losses=row_losses,
@@ -748,7 +874,7 @@ def _report(
         "per_seed": {name: values.tolist() for name, values in per_seed.items()},
         "notes": notes,
     }
-    return Report(
+    report = Report(
         task="regression",
         n_rows=n,
         n_seeds=n_seeds,
@@ -761,11 +887,87 @@ def _report(
         train_scores=train_scores,
         details=details,
     )
+    return report, row_losses
 
 
 # --------------------------------------------------------------------------------------
 # Intervals
 # --------------------------------------------------------------------------------------
+
+_SWEEP_ROWS = 1 << 14
+"""Rows per block of the interval sweep: its few temporaries stay in cache."""
+
+
+@dataclass
+class _SweepResult:
+    """Sums of squared deviations from one sweep over the per-row values (weighted)."""
+
+    row_loss: float  # sum w (u - mean u)^2, u the row loss averaged over seeds
+    row_absolute: float  # sum w (v - mean v)^2, v the |r| averaged over seeds
+    row_percentage: float  # sum w (v / max(|y|, eps) - its mean)^2
+    r2: float  # sum w (u - R b - c)^2 (delta method for R = mean u / mean b)
+    explained_variance: float  # the same for a'_i = u_i - 2 rho e_i + const
+
+
+def _sweep(
+    ts: _TargetStats,
+    res: _PassResult,
+    row_losses: NDArray[np.float64],
+    n_seeds: int,
+    centres: dict[str, float],
+    ratios: bool,
+) -> _SweepResult:
+    """Every sum of squared deviations the intervals need, in one sweep over the rows.
+
+    The centres (means, ratios) come from the fused pass's sums, so one blocked sweep
+    replaces two passes per interval; the deviations are formed from the centred values
+    (two-pass accuracy: no E[x^2] - E[x]^2 cancellation). ``ratios=False`` skips the r2
+    and explained variance sums (constant targets or fewer than two rows).
+    """
+    w = ts.weights
+    n = row_losses.size
+    assert res.row_absolute is not None
+    step = min(n, _SWEEP_ROWS)
+    t = _aligned_empty(step)
+    v = _aligned_empty(step)
+    u_mean, v_mean, pct_mean = centres["mse"], centres["mae"], centres["mape"]
+    sums = np.zeros(5)
+    for start in range(0, n, step):
+        stop = min(start + step, n)
+        sl = slice(start, stop)
+        m = stop - start
+        tb, vb = t[:m], v[:m]
+        wb = None if w is None else w[sl]
+        ub = row_losses[sl]
+
+        def add(j: int, dev: NDArray[np.float64], wb=wb) -> None:
+            if wb is None:
+                sums[j] += np.einsum("i,i->", dev, dev)
+            else:
+                np.multiply(dev, dev, out=dev)
+                sums[j] += np.einsum("i,i->", dev, wb)
+
+        add(0, np.subtract(ub, u_mean, out=tb))
+        np.divide(res.row_absolute[sl], n_seeds, out=vb)  # v, as _intervals divides
+        add(1, np.subtract(vb, v_mean, out=tb))
+        vb *= ts.inverse_scale[sl]
+        add(2, np.subtract(vb, pct_mean, out=tb))
+        if not ratios:
+            continue
+        cb = ts.centred_sq[sl]
+        dev = np.multiply(cb, -centres["r2_ratio"], out=tb)
+        dev += ub
+        dev -= centres["r2_centre"]
+        add(3, dev)
+        assert res.ensemble is not None
+        e = np.subtract(res.ensemble[sl], ts.y[sl], out=vb)  # the ensemble's residual
+        e *= -2.0 * centres["rho"]
+        e += ub
+        dev = np.multiply(cb, -centres["ev_ratio"], out=tb)
+        dev += e
+        dev -= centres["ev_offset"]
+        add(4, dev)
+    return _SweepResult(*(float(x) for x in sums))
 
 
 def _intervals(
@@ -787,27 +989,59 @@ def _intervals(
     - ``median_absolute_error``: per seed, the distribution-free order-statistic interval
       (binomial ranks; Woodruff's with weights), combined by ``seed_mean_interval``;
     - ``max_error``: none (an extreme order statistic has no useful large-sample interval).
+
+    The means come from the fused pass's sums and every sum of squared deviations from one
+    sweep (``_sweep``); the formulas are those of ``normal_interval`` and
+    ``delta_ratio_interval``.
     """
     w = ts.weights
     n_seeds, n = predictions.shape
+    wsum = ts.weight_sum
+    weighted = w is not None
+    n_eff = float(n) if w is None else wsum * wsum / float(np.einsum("i,i->", w, w))
+    seed_total = n_seeds * wsum
+    centres = {
+        "mse": float(res.sum_squared[:n_seeds].sum()) / seed_total,
+        "mae": float(res.sum_absolute[:n_seeds].sum()) / seed_total,
+        "mape": float(res.sum_percentage[:n_seeds].sum()) / seed_total,
+    }
+    b_mean = ts.ev_denominator  # weighted mean of (y - mean y)^2
+    ratios = n >= 2 and ts.r2_denominator != 0.0 and b_mean > 0.0
+    ev: _ExplainedVarianceShortcut | None = None
+    if ratios:
+        centres["r2_ratio"] = centres["mse"] / b_mean
+        centres["r2_centre"] = centres["mse"] - centres["r2_ratio"] * b_mean
+        ev = _explained_variance_shortcut(ts, res, n_seeds, centres["mse"])
+        centres["rho"] = ev.rho
+        centres["ev_ratio"] = ev.mean / b_mean
+        # a'_i - R b_i - centre = u_i - 2 rho e_i - R b_i + (constant - centre)
+        centres["ev_offset"] = (ev.mean - centres["ev_ratio"] * b_mean) - ev.constant
+    sweep = _sweep(ts, res, row_losses, n_seeds, centres, ratios)
+
+    def normal(mean: float, ssd: float) -> Interval:
+        sd = sd_from_sum_of_squares(ssd, wsum, n_eff, weighted)
+        return normal_interval_from_moments(mean, sd, n_eff, level, weighted=weighted)
+
     out: dict[str, Interval] = {}
-    out["mse"] = normal_interval(row_losses, w, level)
+    out["mse"] = normal(centres["mse"], sweep.row_loss)
     out["rmse"] = monotone_interval(
         out["mse"],
         lambda v: math.sqrt(max(v, 0.0)),
         note="square root of the mse interval's endpoints",
     )
-    assert res.row_absolute is not None
-    row_abs = np.divide(res.row_absolute, n_seeds, out=res.row_absolute)
-    out["mae"] = normal_interval(row_abs, w, level)
+    out["mae"] = normal(centres["mae"], sweep.row_absolute)
     if n < 2:
         out["r2"] = no_interval(level, "r2 is undefined with a single row")
     elif ts.r2_denominator == 0.0:
         out["r2"] = no_interval(level, "constant targets: r2 is set by convention")
     else:
-        ratio = delta_ratio_interval(row_losses, ts.centred_sq, w, level)
+        ratio = delta_ratio_from_sums(
+            centres["mse"], b_mean, sweep.r2, wsum, n_eff, weighted, level
+        )
         out["r2"] = monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
-    out["explained_variance"] = _explained_variance_interval(ts, predictions, res, level)
+    out["explained_variance"] = _explained_variance_interval(
+        ts, predictions, res, level, ev, sweep.explained_variance, n_eff
+    )
     assert res.median_low is not None and res.median_high is not None
     lows, highs = res.median_low[:n_seeds], res.median_high[:n_seeds]  # not the ensemble row
     if np.isfinite(lows).all() and np.isfinite(highs).all():
@@ -823,34 +1057,25 @@ def _intervals(
     out["max_error"] = no_interval(
         level, "the maximum is an extreme order statistic: no useful large-sample interval"
     )
-    pct = np.multiply(row_abs, ts.inverse_scale, out=row_abs)
-    out["mape"] = normal_interval(pct, w, level)
+    out["mape"] = normal(centres["mape"], sweep.row_percentage)
     return {name: out[name] for name in METRICS}
 
 
-def _explained_variance_interval(
-    ts: _TargetStats, predictions: NDArray[np.float64], res: _PassResult, level: float
-) -> Interval:
-    """Delta method for 1 - mean(a) / mean(b) with a_i = mean_k (r_ki - rbar_k)^2.
+@dataclass
+class _ExplainedVarianceShortcut:
+    """The one-pass form a'_i = u_i - 2 rho e_i + constant of ``_explained_variance_interval``."""
 
-    Exactly, a_i = u_i - (2 / K) c_i + mean_k rbar_k^2 with u_i the row loss averaged over
-    seeds and c_i = sum_k rbar_k r_ki, a weighted sum over the K seeds (a pass over the
-    (K, n) predictions). Writing rbar_k = rho + delta_k (rho their mean), c_i = K rho e_i +
-    t_i, with e_i the seed-averaged prediction's residual and t_i = sum_k delta_k (p_ki -
-    pbar_i). Dropping t_i leaves a'_i = u_i - 2 rho e_i + const (const chosen so that
-    mean(a') = mean(a)), a pass over n values only. By Cauchy-Schwarz the root mean square
-    of (2 / K) t_i is at most (2 / sqrt(K)) |delta| sqrt(V), V the variance term (mean MSE
-    over seeds minus the ensemble's MSE), and the interval's standard error moves by at most
-    that much over mean(b) sqrt(n_eff). When that bound is below ``_EV_SHORTCUT_TOLERANCE``
-    of the half-width (seeds with nearly equal mean residuals, typical at large n), a' is
-    used; otherwise the exact a.
-    """
-    n_seeds, n = predictions.shape
-    if ts.ev_denominator == 0.0:
-        return no_interval(level, "constant targets: explained_variance is set by convention")
-    if n < 2:
-        return no_interval(level, "needs at least two rows")
-    assert res.row_squared is not None and res.ensemble is not None
+    rho: float  # mean over seeds of each seed's mean residual
+    constant: float  # 2 rho^2 - mean over seeds of (mean residual)^2
+    mean: float  # weighted mean of a'
+    bound: float  # Cauchy-Schwarz bound on the root mean square of the dropped term
+    mean_residuals: NDArray[np.float64]  # (K,) each seed's mean residual rbar_k
+    mean_sq_residuals: float  # mean over seeds of rbar_k^2
+
+
+def _explained_variance_shortcut(
+    ts: _TargetStats, res: _PassResult, n_seeds: int, mean_row_loss: float
+) -> _ExplainedVarianceShortcut:
     wsum = ts.weight_sum
     rbar = res.sum_residual[:n_seeds] / wsum  # the seeds, not the ensemble row
     rho = float(rbar.mean())
@@ -859,35 +1084,69 @@ def _explained_variance_interval(
     variance_term = max(
         0.0, float(res.sum_squared[:n_seeds].mean()) / wsum - float(res.sum_squared[n_seeds]) / wsum
     )
-    bound = 2.0 / math.sqrt(n_seeds) * spread * math.sqrt(variance_term)
+    constant = 2.0 * rho * rho - mean_sq_rbar
+    ensemble_mean_residual = float(res.sum_residual[n_seeds]) / wsum
+    return _ExplainedVarianceShortcut(
+        rho=rho,
+        constant=constant,
+        mean=mean_row_loss - 2.0 * rho * ensemble_mean_residual + constant,
+        bound=2.0 / math.sqrt(n_seeds) * spread * math.sqrt(variance_term),
+        mean_residuals=rbar,
+        mean_sq_residuals=mean_sq_rbar,
+    )
 
-    a = np.empty(n)
-    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_seeds))
-    tmp = np.empty(step)
-    for start in range(0, n, step):  # a'_i = u_i - 2 rho e_i + 2 rho^2 - mean(rbar^2)
-        stop = min(start + step, n)
-        sl = slice(start, stop)
-        c = np.subtract(res.ensemble[sl], ts.y[sl], out=a[sl])
-        c *= -2.0 * rho
-        c += res.row_squared[sl]  # the per-row losses averaged over seeds
-        c += 2.0 * rho * rho - mean_sq_rbar
-    ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
-    if bound > 0.0 and ratio.method != "none":
-        n_eff = float(n) if ts.weights is None else wsum * wsum / float(
-            np.einsum("i,i->", ts.weights, ts.weights)
-        )
+
+def _explained_variance_interval(
+    ts: _TargetStats,
+    predictions: NDArray[np.float64],
+    res: _PassResult,
+    level: float,
+    shortcut: _ExplainedVarianceShortcut | None,
+    shortcut_ssd: float,
+    n_eff: float,
+) -> Interval:
+    """Delta method for 1 - mean(a) / mean(b) with a_i = mean_k (r_ki - rbar_k)^2.
+
+    Exactly, a_i = u_i - (2 / K) c_i + mean_k rbar_k^2 with u_i the row loss averaged over
+    seeds and c_i = sum_k rbar_k r_ki, a weighted sum over the K seeds (a pass over the
+    (K, n) predictions). Writing rbar_k = rho + delta_k (rho their mean), c_i = K rho e_i +
+    t_i, with e_i the seed-averaged prediction's residual and t_i = sum_k delta_k (p_ki -
+    pbar_i). Dropping t_i leaves a'_i = u_i - 2 rho e_i + const (const chosen so that
+    mean(a') = mean(a)), a pass over n values only (done in ``_sweep``). By Cauchy-Schwarz
+    the root mean square of (2 / K) t_i is at most (2 / sqrt(K)) |delta| sqrt(V), V the
+    variance term (mean MSE over seeds minus the ensemble's MSE), and the interval's
+    standard error moves by at most that much over mean(b) sqrt(n_eff). When that bound is
+    below ``_EV_SHORTCUT_TOLERANCE`` of the half-width (seeds with nearly equal mean
+    residuals, typical at large n), a' is used; otherwise the exact a.
+    """
+    n_seeds, n = predictions.shape
+    if ts.ev_denominator == 0.0:
+        return no_interval(level, "constant targets: explained_variance is set by convention")
+    if n < 2:
+        return no_interval(level, "needs at least two rows")
+    assert shortcut is not None and res.row_squared is not None
+    weighted = ts.weights is not None
+    wsum = ts.weight_sum
+    ratio = delta_ratio_from_sums(
+        shortcut.mean, ts.ev_denominator, shortcut_ssd, wsum, n_eff, weighted, level
+    )
+    if shortcut.bound > 0.0 and ratio.method != "none":
         half = (ratio.high - ratio.low) / 2.0
-        shift = z_value(level) * bound / (ts.ev_denominator * math.sqrt(n_eff - 1.0))
+        shift = z_value(level) * shortcut.bound / (ts.ev_denominator * math.sqrt(n_eff - 1.0))
         if not shift <= _EV_SHORTCUT_TOLERANCE * half:
+            rbar = shortcut.mean_residuals
             total = float(rbar.sum())
+            a = np.empty(n)
+            step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_seeds))
+            tmp = np.empty(step)
             for start in range(0, n, step):  # exact: a_i = u_i - (2/K) c_i + mean(rbar^2)
                 stop = min(start + step, n)
                 sl = slice(start, stop)
                 c = np.einsum("k,kc->c", rbar, predictions[:, sl], out=a[sl])
                 c -= np.multiply(ts.y[sl], total, out=tmp[: stop - start])
                 c *= -2.0 / n_seeds
-                c += res.row_squared[sl]
-                c += mean_sq_rbar
+                c += res.row_squared[sl]  # the per-row losses averaged over seeds
+                c += shortcut.mean_sq_residuals
             ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
     return monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
 

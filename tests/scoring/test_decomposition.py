@@ -716,3 +716,43 @@ def test_bad_input_names_the_field(call, field: str) -> None:
     with pytest.raises(ScoringInputError) as info:
         call()
     assert info.value.field == field
+
+
+# ------------------------------------------------------- squared loss from computed losses
+
+
+def test_squared_from_losses_takes_the_identity_only_when_provably_accurate() -> None:
+    from service.scoring.decomposition import (
+        IDENTITY_TOLERANCE,
+        _squared_loss_checked,
+        _squared_loss_from_losses,
+    )
+
+    y, p = _regression(50, n=400, k=5)
+    # reference: sklearn.metrics.mean_squared_error per seed and of the seed mean
+    mean_seed = float(np.mean([mean_squared_error(y, pk) for pk in p]))
+    ensemble = float(mean_squared_error(y, p.mean(axis=0)))
+    u = EPS / 2
+    got = _squared_loss_from_losses(
+        mean_seed, ensemble, None, n_seeds=5, loss_relative_error=100 * u, residual_error=0.0
+    )
+    assert got is not None
+    direct = _squared_loss_checked(y[:, None], p[:, :, None], None, None)
+    _assert_same(got, direct, rel=IDENTITY_TOLERANCE)
+    # a loss error bound too large for the difference, a large residual error (an offset),
+    # no variance at all, or a non-finite loss: no answer, the caller goes the direct way
+    for relative, residual in [(1e-6, 0.0), (100 * u, 1e-6)]:
+        assert _squared_loss_from_losses(
+            mean_seed, ensemble, None, n_seeds=5,
+            loss_relative_error=relative, residual_error=residual,
+        ) is None
+    for a, b in [(1.0, 1.0), (1.0, 1.5), (math.inf, 1.0), (math.nan, 1.0)]:
+        assert _squared_loss_from_losses(
+            a, b, None, n_seeds=5, loss_relative_error=u, residual_error=0.0
+        ) is None
+    # one seed: variance exactly 0 (as the direct method gives) and the ensemble is the seed
+    one = _squared_loss_from_losses(
+        ensemble, ensemble, 0.5, n_seeds=1, loss_relative_error=u, residual_error=0.0
+    )
+    assert one is not None and one.variance == 0.0 and one.noise == 0.5
+    assert one.bias == approx(ensemble - 0.5, rel=TIGHT)

@@ -16,15 +16,18 @@ from statsmodels.stats.weightstats import DescrStatsW
 from service.scoring.intervals import (
     bca_interval,
     bootstrap_interval,
+    delta_ratio_from_sums,
     delta_ratio_interval,
     linearized_interval,
     mean_sd_effective_n,
     monotone_interval,
     no_interval,
     normal_interval,
+    normal_interval_from_moments,
     order_statistic_interval,
     order_statistic_ranks,
     percentile_interval,
+    sd_from_sum_of_squares,
     seed_mean_interval,
     select_order_statistics,
     weighted_quantile,
@@ -68,6 +71,37 @@ def test_weighted_normal_interval_is_statsmodels_at_kish_effective_n(n: int) -> 
 def test_normal_interval_with_one_row_or_one_effective_row_is_none() -> None:
     assert normal_interval(np.array([1.0])).method == "none"
     assert normal_interval(np.array([1.0, 2.0]), np.array([1.0, 0.0])).method == "none"
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_normal_interval_from_sums_is_statsmodels(weighted: bool) -> None:
+    # the path the regression report takes: mean and sum of squared deviations from sums
+    rng = np.random.default_rng(21 + weighted)
+    n = 2000
+    x = rng.gamma(2.0, size=n)
+    w = rng.uniform(0.0, 3.0, size=n) if weighted else None
+    wsum = float(n) if w is None else float(w.sum())
+    n_eff = float(n) if w is None else wsum**2 / float((w**2).sum())
+    mean = float(np.average(x, weights=w))
+    ssd = float(np.sum((x - mean) ** 2 * (1.0 if w is None else w)))
+    sd = sd_from_sum_of_squares(ssd, wsum, n_eff, weighted)
+    got = normal_interval_from_moments(mean, sd, n_eff, 0.9, weighted=weighted)
+    # reference: statsmodels DescrStatsW.zconfint_mean (weights rescaled to Kish's n)
+    scaled = None if w is None else w * n_eff / wsum
+    low, high = DescrStatsW(x, weights=scaled).zconfint_mean(alpha=0.1)
+    assert got.method == "normal"
+    assert (got.low, got.high) == pytest.approx((low, high), rel=1e-12)
+    direct = normal_interval(x, w, level=0.9)  # the same formula from the values
+    assert (got.low, got.high) == pytest.approx((direct.low, direct.high), rel=1e-13)
+
+
+def test_normal_interval_from_moments_gives_the_same_reasons_for_none() -> None:
+    assert math.isnan(sd_from_sum_of_squares(0.0, 1.0, 1.0, False))
+    assert math.isnan(sd_from_sum_of_squares(1.0, 3.0, 1.5, True))
+    one = normal_interval_from_moments(1.0, math.nan, 1.0, 0.95)
+    assert one == normal_interval(np.array([1.0]))
+    weighted = normal_interval_from_moments(1.0, math.nan, 1.0, 0.95, weighted=True)
+    assert weighted == normal_interval(np.array([1.0, 2.0]), np.array([1.0, 0.0]))
 
 
 def test_mean_sd_is_accurate_at_a_large_offset() -> None:
@@ -310,6 +344,32 @@ def test_weighted_delta_ratio_matches_linearized_normal_interval() -> None:
 
 def test_delta_ratio_with_zero_denominator_is_none() -> None:
     assert delta_ratio_interval(np.ones(4), np.zeros(4)).method == "none"
+    assert delta_ratio_from_sums(1.0, 0.0, 1.0, 4.0, 4.0, False).method == "none"
+    assert delta_ratio_from_sums(1.0, 1.0, 1.0, 4.0, 1.5, True).method == "none"
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_delta_ratio_from_sums_matches_the_linearized_normal_interval(weighted: bool) -> None:
+    rng = np.random.default_rng(31 + weighted)
+    n = 800
+    a, b = rng.gamma(2.0, size=n), rng.gamma(3.0, size=n)
+    w = rng.uniform(0.1, 2, size=n) if weighted else None
+    wsum = float(n) if w is None else float(w.sum())
+    n_eff = float(n) if w is None else wsum**2 / float((w**2).sum())
+    a_mean, b_mean = float(np.average(a, weights=w)), float(np.average(b, weights=w))
+    ratio = a_mean / b_mean
+    ssd = float(np.sum((a - ratio * b) ** 2 * (1.0 if w is None else w)))
+    got = delta_ratio_from_sums(a_mean, b_mean, ssd, wsum, n_eff, weighted, 0.9)
+    # reference: the delta method written out: normal interval of the linearization
+    # (a - R b) / mean(b) (statsmodels DescrStatsW at Kish's effective n)
+    influence = (a - ratio * b) / b_mean
+    scaled = None if w is None else w * n_eff / wsum
+    low, high = DescrStatsW(influence, weights=scaled).zconfint_mean(alpha=0.1)
+    half = (high - low) / 2
+    assert got.method == "delta"
+    assert (got.low, got.high) == pytest.approx((ratio - half, ratio + half), rel=1e-10)
+    same = delta_ratio_interval(a, b, w, level=0.9)
+    assert (same.low, same.high) == pytest.approx((got.low, got.high), rel=1e-12)
 
 
 # ------------------------------------------------------------------------------ combining

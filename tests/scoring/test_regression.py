@@ -15,6 +15,7 @@ from sklearn.exceptions import UndefinedMetricWarning
 from statsmodels.stats.weightstats import DescrStatsW
 
 from service.scoring import ScoringInputError, ScoringOptions, to_jsonable
+from service.scoring.decomposition import squared_loss_decomposition
 from service.scoring.intervals import order_statistic_interval
 from service.scoring.regression import (
     MAPE_EPSILON,
@@ -580,3 +581,279 @@ def test_95_percent_intervals_cover_the_truth_on_simulated_data() -> None:
         assert 0.92 <= coverage[name] <= 0.98, (name, coverage[name])
     # the seed-mean median interval is conservative by construction
     assert coverage["median_absolute_error"] >= 0.93
+
+
+# ------------------------------------------------------------------------------ fast paths
+
+
+BAD_VALUES = [np.nan, np.inf, -np.inf]
+
+
+@pytest.mark.parametrize("bad", BAD_VALUES)
+@pytest.mark.parametrize("n", [5, 70_000])  # below and above the bracketed median's size
+def test_non_finite_predictions_are_named_though_checked_through_sums(bad: float, n: int) -> None:
+    # The report and the metrics check predictions through the sums of squares they take
+    # anyway; a NaN or infinite value must still raise the named input error, whichever
+    # seed, row and weight it sits on (a zero weight must not hide it).
+    rng = np.random.default_rng(40)
+    y = rng.normal(size=n)
+    preds = y + rng.normal(size=(3, n))
+    preds[2, n - 1] = bad
+    w = np.ones(n)
+    w[n - 1] = 0.0
+    calls = [
+        lambda: regression_metrics(y, preds),
+        lambda: regression_metrics(y, preds, sample_weight=w),
+        lambda: regression_row_losses(y, preds),
+        lambda: regression_report(y, preds),
+        lambda: regression_report(y, preds, sample_weight=w),
+    ]
+    for call in calls:
+        with pytest.raises(ScoringInputError, match="NaN or infinity") as err:
+            call()
+        assert err.value.field == "predictions"
+    with pytest.raises(ScoringInputError, match="NaN or infinity") as err:
+        regression_report(y, y + 0.1, train_y_true=y, train_predictions=preds)
+    assert err.value.field == "train_predictions"
+
+
+def test_both_infinities_in_one_seed_are_caught() -> None:
+    # +inf and -inf residuals: their squares are both +inf, so the sum cannot cancel to a
+    # finite value (a plain sum of residuals would give NaN, also caught)
+    y = np.zeros(6)
+    preds = np.array([[1.0, np.inf, -np.inf, 2.0, 3.0, 4.0]])
+    with pytest.raises(ScoringInputError) as err:
+        regression_report(y, preds)
+    assert err.value.field == "predictions"
+
+
+@pytest.mark.parametrize("bad", BAD_VALUES)
+def test_non_finite_targets_are_named(bad: float) -> None:
+    y = np.array([1.0, 2.0, bad, 4.0])
+    for call in (regression_metrics, regression_row_losses, regression_report):
+        with pytest.raises(ScoringInputError, match="NaN or infinity") as err:
+            call(y, np.ones((2, 4)))
+        assert err.value.field == "y_true"
+    with pytest.raises(ScoringInputError) as err:
+        regression_report(np.ones(4), np.ones(4), train_y_true=y, train_predictions=np.ones(4))
+    assert err.value.field == "train_y_true"
+
+
+def test_huge_finite_values_overflow_into_the_named_overflow_error() -> None:
+    # finite input whose squared errors (or the seed mean) overflow: the elementwise check
+    # passes, so the report raises its overflow error and the metrics are inf (as sklearn)
+    y = np.array([0.0, 1.0, 2.0, 3.0])
+    cases = [
+        np.array([[3e154, 1.0, 2.0, 3.0], [0.0, 1.0, 2.0, 3.0]]),  # r^2 overflows
+        np.array([[1.7e308, 1.0, 2.0, 3.0], [-1.7e308, 1.0, 2.0, 3.0]]),  # r^2 overflows
+        np.array([[1e308, 1.0, 2.0, 3.0], [1e308, 1.0, 2.0, 3.0]]),  # the seed sum too
+    ]
+    for preds in cases:
+        got = regression_metrics(y, preds)
+        assert got["mse"][0] == math.inf
+        with np.errstate(over="ignore"):  # sklearn warns on the overflow
+            assert skm.mean_squared_error(y, preds[0]) == math.inf  # reference: sklearn
+        with pytest.raises(ScoringInputError, match="overflow") as err:
+            regression_report(y, preds)
+        assert err.value.field == "predictions"
+        with pytest.raises(ScoringInputError, match="overflow") as err:
+            regression_report(y, y, train_y_true=y, train_predictions=preds)
+        assert err.value.field == "train_predictions"
+    # finite squares that only the sum over rows overflows are the same overflow
+    y = np.zeros(4)
+    preds = np.full((1, 4), 1e154)
+    with pytest.raises(ScoringInputError, match="overflow"):
+        regression_report(y, preds)
+
+
+def test_tallied_below_counts_survive_many_blocks(monkeypatch) -> None:
+    # small blocks so that the uint8 tally of "below the bracket" counts is added up more
+    # than once (every 255 blocks); the medians and their intervals stay exact
+    from service.scoring import regression
+
+    monkeypatch.setattr(regression, "_BLOCK_VALUES", 256)
+    monkeypatch.setattr(regression, "_MIN_BLOCK_ROWS", 8)
+    monkeypatch.setattr(regression, "_BRACKET_MIN_ROWS", 4096)
+    monkeypatch.setattr(regression, "_SAMPLE_SIZE", 2048)
+    rng = np.random.default_rng(41)
+    n = 60_001
+    y = rng.normal(size=n)
+    preds = y + rng.standard_t(3, size=(2, n))
+    got = regression.regression_metrics(y, preds)
+    for k in range(2):
+        # reference: sklearn.metrics.median_absolute_error
+        ref = skm.median_absolute_error(y, preds[k])
+        assert got["median_absolute_error"][k] == pytest.approx(ref, rel=RTOL)
+    level = 0.9
+    report = regression.regression_report(y, preds, options=ScoringOptions(level=level))
+    # reference: scipy.stats.quantile_test(...).confidence_interval (binomial ranks)
+    cis = [stats.quantile_test(np.abs(p - y), p=0.5).confidence_interval(level) for p in preds]
+    iv = report.intervals["median_absolute_error"]
+    assert iv.low == pytest.approx(np.mean([c.low for c in cis]), rel=1e-15)
+    assert iv.high == pytest.approx(np.mean([c.high for c in cis]), rel=1e-15)
+    # reference: sklearn.metrics.median_absolute_error on the seed-averaged prediction
+    ens = skm.median_absolute_error(y, preds.mean(axis=0))
+    assert report.ensemble["median_absolute_error"] == pytest.approx(ens, rel=RTOL)
+
+
+def test_aligned_scratch_buffers_start_on_a_cache_line() -> None:
+    from service.scoring.regression import _ALIGN_BYTES, _aligned_empty
+
+    for size in (1, 7, 1000, 12_345):
+        buf = _aligned_empty(size)
+        assert buf.shape == (size,) and buf.dtype == np.float64
+        assert buf.ctypes.data % _ALIGN_BYTES == 0
+
+
+def test_report_with_row_losses_is_the_report_and_the_row_losses(diabetes_runs) -> None:
+    from service.scoring.regression import regression_report_with_row_losses
+
+    y, preds, y_tr, preds_tr = diabetes_runs
+    w = np.random.default_rng(42).uniform(0.5, 2.0, size=y.size)
+    for kwargs in ({}, {"sample_weight": w}, {"train_y_true": y_tr, "train_predictions": preds_tr}):
+        report, rows = regression_report_with_row_losses(y, preds, **kwargs)
+        assert to_jsonable(report) == to_jsonable(regression_report(y, preds, **kwargs))
+        # to the bit what the service would otherwise compute in a second pass
+        np.testing.assert_array_equal(rows, regression_row_losses(y, preds))
+        # reference: numpy, the definition (common practice): mean over seeds of (p - y)^2
+        np.testing.assert_allclose(rows, ((preds - y) ** 2).mean(axis=0), rtol=1e-14)
+    # the report itself carries no per-row values
+    flat = json_leaves(to_jsonable(report))
+    assert all(not (isinstance(v, list) and len(v) >= y.size) for v in flat)
+
+
+def json_leaves(value):
+    """Every list and scalar inside a JSON-like value."""
+    if isinstance(value, dict):
+        for v in value.values():
+            yield from json_leaves(v)
+    elif isinstance(value, list):
+        yield value
+        for v in value:
+            yield from json_leaves(v)
+    else:
+        yield value
+
+
+def _count_direct_decompositions(monkeypatch) -> list[int]:
+    from service.scoring import decomposition
+
+    calls = [0]
+    direct = decomposition._squared_loss_checked
+
+    def counted(*args, **kwargs):
+        calls[0] += 1
+        return direct(*args, **kwargs)
+
+    monkeypatch.setattr(decomposition, "_squared_loss_checked", counted)
+    return calls
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("n,k", [(50, 2), (5000, 7), (100_000, 3)])
+def test_report_decomposition_from_the_pass_agrees_with_the_direct_method(
+    monkeypatch, weighted: bool, n: int, k: int
+) -> None:
+    # where the variance is a fair share of the loss, the report takes it as mean MSE over
+    # seeds minus the ensemble's MSE (the identity) instead of a second pass; it must agree
+    # with the direct two-pass method to 1e-10 relative
+    rng = np.random.default_rng(n + k + weighted)
+    y = rng.normal(3.0, 2.0, size=n)
+    preds = y + 0.3 + 0.6 * rng.normal(size=n) + rng.uniform(0.05, 0.5) * rng.normal(size=(k, n))
+    w = rng.uniform(0.0, 2.0, size=n) if weighted else None
+    direct = squared_loss_decomposition(y, preds, sample_weight=w, noise_variance=0.1)
+    calls = _count_direct_decompositions(monkeypatch)
+    got = regression_report(y, preds, sample_weight=w, noise_variance=0.1).bias_variance[
+        "squared"
+    ]
+    assert calls[0] == 0  # the identity was used
+    for name in ("expected_loss", "bias", "variance", "variance_share", "ensemble_loss"):
+        assert getattr(got, name) == pytest.approx(getattr(direct, name), rel=1e-10), name
+    assert got.noise == direct.noise == 0.1
+    # reference: sklearn.metrics.mean_squared_error per seed and of the seed mean; numpy.var
+    # over seeds (ddof=0) averaged over rows (Geman et al. 1992)
+    expected = np.mean([skm.mean_squared_error(y, p, sample_weight=w) for p in preds])
+    ensemble = skm.mean_squared_error(y, preds.mean(axis=0), sample_weight=w)
+    variance = np.average(np.var(preds, axis=0), weights=w)
+    assert got.expected_loss == pytest.approx(expected, rel=1e-12)
+    assert got.ensemble_loss == pytest.approx(ensemble, rel=1e-12)
+    assert got.variance == pytest.approx(variance, rel=1e-10)
+
+
+def test_report_decomposition_falls_back_to_the_direct_method_on_numacc_seeds(
+    monkeypatch,
+) -> None:
+    # NIST StRD NumAcc4-style seeds (offset 1e7, spread 0.1; values from memory): the seed
+    # mean's rounding dominates the difference of losses, so the report must use the
+    # direct two-pass method; compared with exact rational arithmetic (fractions) on the
+    # float64 values actually passed
+    from fractions import Fraction
+
+    seeds = np.array([10000000.2] + [10000000.1, 10000000.3] * 500)
+    n_rows = 4
+    preds = np.tile(seeds[:, np.newaxis], (1, n_rows))
+    y = np.full(n_rows, 10000000.2)
+    calls = _count_direct_decompositions(monkeypatch)
+    got = regression_report(y, preds).bias_variance["squared"]
+    assert calls[0] == 1
+    exact = [Fraction(x) for x in seeds.tolist()]
+    mean = sum(exact) / len(exact)
+    variance = sum((x - mean) ** 2 for x in exact) / len(exact)
+    assert got.variance == pytest.approx(float(variance), rel=1e-12)
+    # and a tiny variance beside a large loss also goes the direct way
+    rng = np.random.default_rng(43)
+    y = rng.normal(size=1000)
+    preds = y + 5.0 + 1e-6 * rng.normal(size=(3, 1000))
+    got = regression_report(y, preds).bias_variance["squared"]
+    assert calls[0] == 2
+    # reference: numpy.var over seeds (ddof=0) averaged over rows
+    assert got.variance == pytest.approx(np.var(preds, axis=0).mean(), rel=1e-9)
+
+
+@pytest.mark.parametrize("weighted", [False, True])
+def test_r2_and_explained_variance_intervals_are_the_delta_method_written_out(
+    monkeypatch, weighted: bool
+) -> None:
+    # the report forms these intervals from the pass's sums and one sweep; here they are
+    # written out from their definitions and the statsmodels normal interval
+    from service.scoring import regression
+
+    rng = np.random.default_rng(44 + weighted)
+    n, k = 3000, 3
+    y = rng.gamma(3.0, size=n)
+    preds = y + 0.3 + 0.8 * rng.normal(size=n) + 0.5 * rng.normal(size=(k, n))
+    w = rng.uniform(0.2, 2.0, size=n) if weighted else None
+    level = 0.9
+    wsum = float(n) if w is None else float(w.sum())
+    n_eff = float(n) if w is None else wsum**2 / float((w**2).sum())
+    scaled = None if w is None else w * n_eff / wsum
+    b = (y - np.average(y, weights=w)) ** 2
+    r = preds - y
+    rbar = np.average(r, axis=1, weights=w)
+
+    def delta(a: np.ndarray) -> tuple[float, float]:
+        ratio = np.average(a, weights=w) / np.average(b, weights=w)
+        influence = (a - ratio * b) / np.average(b, weights=w)
+        # reference: statsmodels DescrStatsW.zconfint_mean of the linearization (Kish's n)
+        low, high = DescrStatsW(influence, weights=scaled).zconfint_mean(alpha=1 - level)
+        half = (high - low) / 2
+        return 1 - (ratio + half), 1 - (ratio - half)
+
+    options = ScoringOptions(level=level)
+    report = regression.regression_report(y, preds, sample_weight=w, options=options)
+    iv = report.intervals["r2"]
+    assert (iv.low, iv.high) == pytest.approx(delta((r**2).mean(axis=0)), rel=1e-10)
+    # explained variance, exact form: a_i = mean_k (r_ki - rbar_k)^2
+    monkeypatch.setattr(regression, "_EV_SHORTCUT_TOLERANCE", 0.0)
+    report = regression.regression_report(y, preds, sample_weight=w, options=options)
+    iv = report.intervals["explained_variance"]
+    exact = ((r - rbar[:, None]) ** 2).mean(axis=0)
+    assert (iv.low, iv.high) == pytest.approx(delta(exact), rel=1e-10)
+    # the one-pass form: a'_i = u_i - 2 rho e_i + 2 rho^2 - mean_k rbar_k^2
+    monkeypatch.setattr(regression, "_EV_SHORTCUT_TOLERANCE", math.inf)
+    report = regression.regression_report(y, preds, sample_weight=w, options=options)
+    iv = report.intervals["explained_variance"]
+    rho = rbar.mean()
+    e = preds.mean(axis=0) - y
+    shortcut = (r**2).mean(axis=0) - 2 * rho * e + 2 * rho**2 - np.mean(rbar**2)
+    assert (iv.low, iv.high) == pytest.approx(delta(shortcut), rel=1e-10)
