@@ -87,7 +87,7 @@ def _mean(runs: list[dict[str, float]], key: str) -> float:
 def test_boosting_attack_overfits_an_unguarded_holdout(runs: list[dict[str, float]]) -> None:
     # Source: Blum & Hardt 2015, boosting attack figure, n = 4000, k = 400, 5 decimals,
     # mean of 5 runs (REFERENCES.md: "about 0.43 unguarded ... 0.50 on fresh rows"; the
-    # authors' published csvs/kaggleboosting-4000-400-5-highacc.csv has 0.42745 at k = 400).
+    # authors' published result table for this setting has 0.42745 at k = 400).
     # Bounds: one run's loss on 4000 rows has binomial sd sqrt(0.25 / 4000) ~ 0.0079, the
     # mean of 5 runs ~ 0.0035 (more spread comes from how many vectors are kept). We allow
     # +-0.03 around the paper's 0.43 and 0.50 (about 8 sd of the 5-run mean): wide for the
