@@ -12,11 +12,13 @@ per group per holdout).
 - ``adaptive_overfit_test``: evidence, for the owner, that a group's feedback-slice score
   beats its reserve-slice score by more than chance (flag code ``feedback_tuned``).
 
-Every guard works on per-row losses, so it applies to any primary metric that is a mean of
-per-row losses (squared error, absolute error, zero-one, log loss, Brier). A primary
-metric that is not such a mean (R^2, F1, ROC AUC, ...) is guarded through its per-row
-proxy loss, named by ``proxy_loss_name``: the Ladder decides on the proxy whether a
-submission improved, and the service shows a new primary-metric value only when it did.
+Every guard works on per-row losses, so it applies to any primary metric: the per-row loss
+is the one ``service.scoring.catalog`` names for the metric (``METRICS[name].row_loss``:
+``squared``, ``zero_one``, ``log`` or ``brier``), the single source of that table. For a
+metric that is a mean of that loss (MSE, log loss, Brier, 1 - accuracy) the Ladder decides
+on the metric itself; otherwise (RMSE, R^2, F1, ROC AUC, ...) it decides on the loss the
+metric is built on, and the service shows a new primary-metric value only when the loss
+improved.
 """
 
 from __future__ import annotations
@@ -24,7 +26,6 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
-from types import MappingProxyType
 from typing import Any
 
 import numpy as np
@@ -36,13 +37,12 @@ from ._checks import ScoringInputError
 __all__ = [
     "FEEDBACK_TUNED",
     "GUARDS",
-    "PROXY_LOSSES",
     "LadderDecision",
     "LadderState",
     "adaptive_overfit_test",
     "ladder_step",
     "no_guard",
-    "proxy_loss_name",
+    "round_nested",
     "rounded_guard",
 ]
 
@@ -314,59 +314,24 @@ def no_guard(value: float) -> float:
     return float(value)
 
 
-_METRICS_BY_PROXY = {
-    # Means of per-row squared error, or monotone in it on a fixed holdout.
-    "squared_error": "mse mean_squared_error rmse root_mean_squared_error r2 r2_score "
-    "explained_variance explained_variance_score",
-    # Means of per-row absolute error; median and max are guarded through the mean.
-    "absolute_error": "mae mean_absolute_error median_absolute_error medae max_error",
-    "absolute_percentage_error": "mape mean_absolute_percentage_error",
-    # Label metrics: counts of right and wrong rows.
-    "zero_one": "accuracy accuracy_score balanced_accuracy balanced_accuracy_score precision "
-    "precision_score recall recall_score f1 f1_score mcc matthews_corrcoef cohen_kappa "
-    "cohen_kappa_score zero_one zero_one_loss",
-    "log_loss": "log_loss",
-    # Ranking metrics need scores; the bounded Brier loss of the probabilities is the proxy.
-    "brier": "brier brier_score_loss roc_auc roc_auc_score average_precision "
-    "average_precision_score",
-}
+def round_nested(value: Any, decimals: int) -> Any:
+    """Every float in a JSON-like nesting (dicts, lists) rounded to ``decimals`` places.
 
-PROXY_LOSSES: Mapping[str, str] = MappingProxyType(
-    {metric: loss for loss, names in _METRICS_BY_PROXY.items() for metric in names.split()}
-)
-"""Metric name -> per-row loss the guards use for it (see ``proxy_loss_name``)."""
-
-
-def proxy_loss_name(metric: str) -> str:
-    """Per-row loss that guards a primary metric.
-
-    Why: the Ladder's paired test needs a loss per row whose mean is the score. For a mean
-    of per-row losses that is the loss itself; otherwise it is the per-row loss the metric
-    is built on:
-
-    - ``mse``, ``rmse``, ``r2``, ``explained_variance`` -> ``squared_error`` (on a fixed
-      holdout RMSE and R^2 are monotone in MSE; explained variance is MSE after removing
-      the mean error, so squared error is close but not exact);
-    - ``mae``, ``median_absolute_error``, ``max_error`` -> ``absolute_error``;
-    - ``mape`` -> ``absolute_percentage_error`` (``|y - p| / max(|y|, eps)``, as sklearn);
-    - ``accuracy``, ``balanced_accuracy``, ``precision``, ``recall``, ``f1``, ``mcc``,
-      ``cohen_kappa`` -> ``zero_one``;
-    - ``log_loss`` -> ``log_loss`` (unbounded: clip probabilities before guarding);
-    - ``brier``, ``roc_auc``, ``average_precision`` -> ``brier`` (ranking metrics need
-      probabilities; Brier is bounded, which suits the Ladder's analysis for losses in
-      [0, 1]).
-
-    scikit-learn's function names (``mean_squared_error``, ``r2_score``, ...) are accepted
-    too; ``PROXY_LOSSES`` holds the full table.
+    Why: the ``rounded`` guard, and the Ladder's reports, show every number a submitter
+    receives at the holdout's precision, not only the headline score. Integers (counts),
+    booleans, strings and None pass through unchanged; non-finite floats are kept as they
+    are (the service writes them as null).
     """
-    key = metric.strip().lower() if isinstance(metric, str) else metric
-    try:
-        return PROXY_LOSSES[key]
-    except (KeyError, TypeError):
-        known = ", ".join(sorted(PROXY_LOSSES))
-        raise ScoringInputError(
-            "metric", f"no per-row proxy loss for {metric!r}; known metrics: {known}"
-        ) from None
+    d = _check_decimals(decimals)
+    if isinstance(value, bool) or value is None or isinstance(value, (int, str)):
+        return value
+    if isinstance(value, float):
+        return round(value, d) if math.isfinite(value) else value
+    if isinstance(value, Mapping):
+        return {k: round_nested(v, d) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [round_nested(v, d) for v in value]
+    return value
 
 
 def adaptive_overfit_test(

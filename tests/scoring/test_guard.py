@@ -1,4 +1,4 @@
-"""The reuse guards: the parameter-free Ladder, rounding, proxy losses, the feedback_tuned test.
+"""The reuse guards: the parameter-free Ladder, rounding, guarded losses, the feedback_tuned test.
 
 Sources: Blum & Hardt 2015, "The Ladder: A Reliable Leaderboard for Machine Learning
 Competitions" (ICML; arXiv 1502.04585) and the authors' reference code (mrtzh/Ladder.jl),
@@ -24,16 +24,16 @@ from hypothesis.stateful import (
 from scipy import stats
 
 from service.scoring import ScoringInputError
+from service.scoring.catalog import METRICS, ROW_LOSSES, TASKS, primary_metric
 from service.scoring.guard import (
     FEEDBACK_TUNED,
     GUARDS,
-    PROXY_LOSSES,
     LadderDecision,
     LadderState,
     adaptive_overfit_test,
     ladder_step,
     no_guard,
-    proxy_loss_name,
+    round_nested,
     rounded_guard,
 )
 
@@ -325,39 +325,45 @@ def test_guard_names() -> None:
     assert GUARDS == ("ladder", "rounded", "none")
 
 
-# ---------------------------------------------------------------- proxy losses
+def test_round_nested_rounds_every_float_and_nothing_else() -> None:
+    value = {
+        "scores": {"rmse": 1.234567, "r2": None},
+        "intervals": [{"low": 0.123456, "high": float("inf"), "method": "normal"}],
+        "counts": [[3, 4], [5, 6]],
+        "flag": True,
+    }
+    out = round_nested(value, 3)
+    # reference: Python's round (half to even on the exact binary value)
+    assert out["scores"] == {"rmse": round(1.234567, 3), "r2": None}
+    assert out["intervals"][0]["low"] == round(0.123456, 3)
+    assert out["intervals"][0]["high"] == float("inf") and out["intervals"][0]["method"] == "normal"
+    assert out["counts"] == [[3, 4], [5, 6]] and out["flag"] is True
+    with pytest.raises(ScoringInputError):
+        round_nested(value, -1)
 
 
-@pytest.mark.parametrize(
-    ("metric", "loss"),
-    [
-        ("mse", "squared_error"),
-        ("rmse", "squared_error"),
-        ("r2", "squared_error"),
-        ("explained_variance", "squared_error"),
-        ("mae", "absolute_error"),
-        ("mape", "absolute_percentage_error"),
-        ("accuracy", "zero_one"),
-        ("balanced_accuracy", "zero_one"),
-        ("f1", "zero_one"),
-        ("mcc", "zero_one"),
-        ("log_loss", "log_loss"),
-        ("brier", "brier"),
-        ("roc_auc", "brier"),
-        ("average_precision", "brier"),
-        ("R2_Score", "squared_error"),
-    ],
-)
-def test_proxy_loss_table(metric: str, loss: str) -> None:
-    assert proxy_loss_name(metric) == loss
+# ---------------------------------------------------------------- guarded losses
 
 
-def test_proxy_for_rmse_and_r2_orders_like_mse() -> None:
+def test_every_primary_metric_is_guarded_by_a_stored_row_loss() -> None:
+    # The Ladder decides on the per-row loss the catalog stores for the primary metric
+    # (catalog.METRICS[m].row_loss is the single table; the guard has none of its own).
+    for task in TASKS:
+        for name, info in METRICS.items():
+            if task in info.tasks and not info.reveals_row:
+                assert primary_metric(task, name).row_loss in ROW_LOSSES
+    assert METRICS["accuracy"].row_loss == "zero_one"
+    assert METRICS["log_loss"].row_loss == "log"
+    assert METRICS["roc_auc"].row_loss == "brier"
+
+
+def test_guarding_rmse_and_r2_through_squared_error_orders_like_them() -> None:
     # On a fixed holdout RMSE = sqrt(MSE) and R^2 = 1 - MSE / var(y) are monotone in MSE,
-    # so guarding MSE guards them. reference: sklearn.metrics.mean_squared_error, r2_score,
-    # root_mean_squared_error
+    # so a Ladder on the per-row squared error guards them. reference:
+    # sklearn.metrics.mean_squared_error, r2_score, root_mean_squared_error
     from sklearn.metrics import mean_squared_error, r2_score, root_mean_squared_error
 
+    assert METRICS["rmse"].row_loss == METRICS["r2"].row_loss == "squared"
     rng = np.random.default_rng(5)
     y = rng.normal(size=200)
     preds = [y + rng.normal(scale=s, size=200) for s in (0.2, 0.5, 1.0, 2.0)]
@@ -365,20 +371,6 @@ def test_proxy_for_rmse_and_r2_orders_like_mse() -> None:
     order = np.argsort(mse)
     assert np.all(np.diff([root_mean_squared_error(y, preds[i]) for i in order]) > 0)
     assert np.all(np.diff([r2_score(y, preds[i]) for i in order]) < 0)
-
-
-def test_every_proxy_is_a_known_loss_and_unknown_metrics_are_refused() -> None:
-    known = {
-        "squared_error",
-        "absolute_error",
-        "absolute_percentage_error",
-        "zero_one",
-        "log_loss",
-        "brier",
-    }
-    assert set(PROXY_LOSSES.values()) == known
-    with pytest.raises(ScoringInputError, match="no per-row proxy loss"):
-        proxy_loss_name("hinge")
 
 
 # ---------------------------------------------------------------- feedback_tuned
