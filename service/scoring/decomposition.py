@@ -262,18 +262,19 @@ def _squared_loss_from_losses(
     residuals, squaring and summing (each is a sum of non-negative terms, so a relative
     bound holds: about (log2(block) + number of blocks + a few) units of roundoff for
     blockwise pairwise sums). ``residual_error`` (h) bounds the absolute error of each row's
-    seed-mean residual pbar - y from rounding in the seed mean itself (about K units of
-    roundoff times the largest |prediction|: that error scales with the predictions' offset,
-    not with the residual). By Cauchy-Schwarz, sum_i w_i |e_i| h <= W h sqrt(B), so
+    ensemble residual e_i as the caller formed it: about K units of roundoff times the
+    largest |residual| when e is the mean of the seeds' residuals, but times the largest
+    |prediction| when e = pbar - y (that error scales with the predictions' offset, not
+    with the residual). By Cauchy-Schwarz, sum_i w_i |e_i| h <= W h sqrt(B), so
 
         |error of V| <= g (A + B) + 2 h sqrt(B) + h^2 + eps |V|.
 
     The identity is used when twice that bound is at most ``IDENTITY_TOLERANCE`` times V.
-    With one seed (``n_seeds == 1``) the variance is 0 and the ensemble is that seed.
     This is stricter than a plain V >= 1e-6 A rule, which it implies (g >= 20 eps gives
     V >= 4e-5 A): with g about 1e-14 (a million rows) a variance of 1e-6 A could carry a
-    relative error near 1e-8 in the worst case, and a large common offset of the predictions
-    (NIST's NumAcc sets: 1e7 spread by 0.1) makes h dominate; both go to the direct method.
+    relative error near 1e-8 in the worst case, so such small variances go to the direct
+    method, as do large offsets when e carries their rounding.
+    With one seed (``n_seeds == 1``) the variance is 0 and the ensemble is that seed.
     """
     a, b = mean_seed_loss, ensemble_loss
     if n_seeds == 1:  # one seed: no spread, and the direct method's variance is exactly 0

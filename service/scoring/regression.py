@@ -101,8 +101,11 @@ _SAMPLE_SIZE = 1 << 14
 _SAMPLE_SEED = 1_202_2026
 """Fixed seed of the bracket's row sample: the same input always takes the same path."""
 
-_BRACKET_Z = 5.0
-"""Bracket margin in binomial standard deviations of the sample rank (miss chance ~ 1e-6)."""
+_BRACKET_Z = 3.0
+"""Bracket margin in binomial standard deviations of the sample rank. A miss (chance about
+3e-3 per seed) costs one exact selection for that seed; a wider margin costs every seed a
+denser scan (5 standard deviations kept twice as many values and made the scan, whose cost
+grows with the share kept, about twice as slow)."""
 
 _EV_SHORTCUT_TOLERANCE = 1e-3
 """The explained variance interval takes its one-pass form when that moves the half-width
@@ -134,54 +137,72 @@ def _aligned_empty(size: int) -> NDArray[np.float64]:
 # --------------------------------------------------------------------------------------
 
 
+_TARGET_BLOCK = 1 << 14
+"""Rows per block when the targets are summarized: the block's temporaries stay in cache."""
+
+
 @dataclass
 class _TargetStats:
-    """What the metrics need from the targets alone, computed once per set of rows."""
+    """What the metrics need from the targets alone, computed once per set of rows.
+
+    Per-row quantities ((y - mean)^2 and 1 / max(|y|, eps)) are not stored: they are formed
+    block by block where they are used (``centred_sq``, ``inverse_scale``), which is cheaper
+    than a fresh (n,) array (its page faults alone cost as much as a few passes over it).
+    """
 
     y: NDArray[np.float64]
     weights: NDArray[np.float64] | None
     weight_sum: float
     mean: float
-    centred_sq: NDArray[np.float64]  # (y - mean)^2, shape (n,)
     r2_denominator: float  # sum w (y - mean)^2, as in r2_score
     ev_denominator: float  # weighted mean of (y - mean)^2, as in explained_variance_score
-    inverse_scale: NDArray[np.float64]  # 1 / max(|y|, eps), shape (n,)
-    weighted_inverse_scale: NDArray[np.float64]  # w / max(|y|, eps) (or the same array)
     positive: NDArray[np.bool_] | None  # rows of positive weight (weights only)
     zero_targets: int
-    max_abs: float  # max |y|
+
+    def centred_sq(self, rows: slice, out: NDArray[np.float64]) -> NDArray[np.float64]:
+        """(y - mean)^2 on ``rows``, written to ``out`` (of the rows' length)."""
+        np.subtract(self.y[rows], self.mean, out=out)
+        return np.multiply(out, out, out=out)
+
+    def inverse_scale(
+        self, rows: slice, out: NDArray[np.float64], *, weighted: bool = False
+    ) -> NDArray[np.float64]:
+        """MAPE's 1 / max(|y|, eps) on ``rows`` (times the weight with ``weighted``)."""
+        np.abs(self.y[rows], out=out)
+        np.maximum(out, MAPE_EPSILON, out=out)
+        if weighted and self.weights is not None:
+            return np.divide(self.weights[rows], out, out=out)
+        return np.divide(1.0, out, out=out)
 
 
 def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _TargetStats:
     mean = float(np.average(y, weights=w))
-    centred_sq = y - mean
-    np.multiply(centred_sq, centred_sq, out=centred_sq)
-    if w is None:
-        r2_den = float(centred_sq.sum())
-        ev_den = r2_den / y.size  # what np.mean computes, so the same bits as sklearn's
-        weight_sum = float(y.size)
-    else:
-        r2_den = float(np.multiply(w, centred_sq).sum())
-        ev_den = float(np.average(centred_sq, weights=w))
-        weight_sum = float(w.sum())
-    abs_y = np.abs(y)
-    zero_targets = int(np.count_nonzero(abs_y == 0.0))
-    max_abs = float(abs_y.max())
-    inverse_scale = np.maximum(abs_y, MAPE_EPSILON, out=abs_y)
-    np.divide(1.0, inverse_scale, out=inverse_scale)
+    n = y.size
+    step = min(n, _TARGET_BLOCK)
+    buf = _aligned_empty(step)
+    r2_den = 0.0
+    zero_targets = 0
+    for start in range(0, n, step):
+        stop = min(start + step, n)
+        sl = slice(start, stop)
+        t = buf[: stop - start]
+        zero_targets += int(np.count_nonzero(y[sl] == 0.0))
+        np.subtract(y[sl], mean, out=t)
+        if w is None:
+            r2_den += float(np.einsum("i,i->", t, t))
+        else:
+            np.multiply(t, t, out=t)
+            r2_den += float(np.einsum("i,i->", t, w[sl]))
+    weight_sum = float(n) if w is None else float(w.sum())
     return _TargetStats(
         y=y,
         weights=w,
         weight_sum=weight_sum,
         mean=mean,
-        centred_sq=centred_sq,
         r2_denominator=r2_den,
-        ev_denominator=ev_den,
-        inverse_scale=inverse_scale,
-        weighted_inverse_scale=inverse_scale if w is None else w * inverse_scale,
+        ev_denominator=r2_den / weight_sum,
         positive=None if w is None else w > 0,
         zero_targets=zero_targets,
-        max_abs=max_abs,
     )
 
 
@@ -198,9 +219,9 @@ class _PassResult:
     median: NDArray[np.float64] | None  # median |r| (weighted: scikit-learn's rule)
     median_low: NDArray[np.float64] | None  # order-statistic interval of the median
     median_high: NDArray[np.float64] | None
-    row_squared: NDArray[np.float64] | None  # (n,) sum over the K seeds of r^2
+    row_loss: NDArray[np.float64] | None  # (n,) mean over the K seeds of r^2
     row_absolute: NDArray[np.float64] | None  # (n,) sum over the K seeds of |r|
-    ensemble: NDArray[np.float64] | None  # (n,) the seed-averaged prediction
+    ensemble_residual: NDArray[np.float64] | None  # (n,) sum over the K seeds of r, over K
     squared_relative_error: float  # bound on the relative rounding error of sum_squared
 
 
@@ -212,16 +233,21 @@ def _fused_pass(
     ensemble: bool = False,
     median: bool = True,
     median_interval_level: float | None = None,
-    row_squared: bool = False,
+    row_loss: bool = False,
     row_absolute: bool = False,
 ) -> _PassResult:
     """Every sum the metrics need, in one sweep over blocks of rows, all seeds at once.
 
     For each block of rows, the residuals r = p - y of every seed (and, with ``ensemble``,
-    of the seed-averaged prediction, formed from the same block) are made once into one
-    small 2-d buffer that stays in cache while it is turned into |r| and then r^2 in place:
+    those of the seed-averaged prediction, e = sum_k r_k / K) are made once into one small
+    2-d buffer that stays in cache while it is turned into |r| and then r^2 in place:
     every sum, the per-row accumulations over seeds and the median's candidates are taken
     from it. The (K, n) predictions are read once; no temporary of n rows per seed is made.
+
+    The ensemble's residual is the mean of the seeds' residuals, equal in exact arithmetic
+    to pbar - y (pbar = ``predictions.mean(axis=0)``, as scikit-learn would be given) and
+    more accurate in floating point: it carries no rounding at the scale of the predictions
+    themselves, only of the residuals (so a large common offset costs nothing).
 
     ``predictions`` need not have been checked for NaN or infinity: any such value makes
     its seed's sum of squares non-finite, and only then is the input checked elementwise
@@ -234,14 +260,15 @@ def _fused_pass(
     step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_rows))
     step = min(n, -(-step // 8) * 8)  # whole cache lines per row of a block
     storage = _aligned_empty(n_rows * step)
+    scale = _aligned_empty(step)  # the block's (weighted) inverse scale for MAPE
     s_r = np.zeros(n_rows)
     s_sq = np.zeros(n_rows)
     s_abs = np.zeros(n_rows)
     s_pct = np.zeros(n_rows)
     m_abs = np.full(n_rows, -np.inf if w is None else 0.0)
-    rows_sq = np.empty(n) if row_squared else None
-    rows_abs = np.empty(n) if row_absolute else None
-    pbar = np.empty(n) if ensemble else None
+    rows_sq = _aligned_empty(n) if row_loss else None
+    rows_abs = _aligned_empty(n) if row_absolute else None
+    ens = _aligned_empty(n) if ensemble else None
 
     half = n // 2
     median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
@@ -260,24 +287,26 @@ def _fused_pass(
         stop = min(start + step, n)
         sl = slice(start, stop)
         a = storage[: n_rows * (stop - start)].reshape(n_rows, stop - start)
-        block = predictions[:, sl]
-        np.subtract(block, y[sl], out=a[:n_seeds])
-        if pbar is not None:
-            mean_block = np.add.reduce(block, axis=0, out=pbar[sl])
-            mean_block /= n_seeds  # the same operations as predictions.mean(axis=0)
-            np.subtract(mean_block, y[sl], out=a[n_seeds])
+        np.subtract(predictions[:, sl], y[sl], out=a[:n_seeds])
+        if ens is not None:
+            e = np.add.reduce(a[:n_seeds], axis=0, out=a[n_seeds])
+            e /= n_seeds
+            ens[sl] = e
+        # einsum's row sums run about twice as fast as np.add.reduce(a, axis=1); only the
+        # sums of squares, whose error bound the decomposition relies on, stay pairwise
         if w is None:
-            s_r += np.add.reduce(a, axis=1)
+            s_r += np.einsum("kc->k", a)
         else:
             s_r += np.einsum("kc,c->k", a, w[sl])
         np.abs(a, out=a)  # a = |r| from here
         if w is None:
-            s_abs += np.add.reduce(a, axis=1)
+            s_abs += np.einsum("kc->k", a)
             np.maximum(m_abs, np.maximum.reduce(a, axis=1), out=m_abs)
         else:
             s_abs += np.einsum("kc,c->k", a, w[sl])
             np.maximum(m_abs, np.max(a, axis=1, where=ts.positive[sl], initial=0.0), out=m_abs)
-        s_pct += np.einsum("kc,c->k", a, ts.weighted_inverse_scale[sl])
+        inv = ts.inverse_scale(sl, scale[: stop - start], weighted=True)
+        s_pct += np.einsum("kc,c->k", a, inv)
         if rows_abs is not None:
             np.add.reduce(a[:n_seeds], axis=0, out=rows_abs[sl])
         if selector is not None:
@@ -285,6 +314,7 @@ def _fused_pass(
         np.multiply(a, a, out=a)  # a = r^2 from here (|r|^2 is r^2 to the bit)
         if rows_sq is not None:
             np.add.reduce(a[:n_seeds], axis=0, out=rows_sq[sl])
+            rows_sq[sl] /= n_seeds
         if w is not None:
             a *= w[sl]
         s_sq += np.add.reduce(a, axis=1)  # pairwise: see squared_relative_error
@@ -292,12 +322,7 @@ def _fused_pass(
     if not np.isfinite(s_sq).all():
         require_finite(predictions, name)  # NaN or infinity in the input: the named error
 
-    def prediction_row(k: int) -> NDArray[np.float64]:
-        if k < n_seeds:
-            return predictions[k]
-        assert pbar is not None
-        return pbar
-
+    residual_row = _residual_rows(predictions, y, ens)
     med = med_low = med_high = None
     if median:
         med = np.empty(n_rows)
@@ -305,14 +330,13 @@ def _fused_pass(
         med_high = np.full(n_rows, np.nan)
         for k in range(n_rows):
             if selector is not None:
-                found = selector.finish_row(k, lambda k=k: np.abs(prediction_row(k) - y))
+                found = selector.finish_row(k, lambda k=k: np.abs(residual_row(k)))
                 med[k] = found[half] if n % 2 else (found[half - 1] + found[half]) / 2
                 if ci_ranks is not None:
                     med_low[k], med_high[k] = found[ci_ranks[0]], found[ci_ranks[1]]
             else:
                 assert w is not None
-                scratch = np.subtract(prediction_row(k), y)
-                np.abs(scratch, out=scratch)
+                scratch = np.abs(residual_row(k))
                 med[k], med_low[k], med_high[k] = _weighted_median(
                     scratch, w, median_interval_level
                 )
@@ -332,9 +356,9 @@ def _fused_pass(
         median=med,
         median_low=med_low,
         median_high=med_high,
-        row_squared=rows_sq,
+        row_loss=rows_sq,
         row_absolute=rows_abs,
-        ensemble=pbar,
+        ensemble_residual=ens,
         squared_relative_error=squared_relative_error,
     )
 
@@ -343,13 +367,14 @@ class _BracketSelector:
     """Exact order statistics of each prediction row's |r| at a few ranks, fed block by block.
 
     A fixed random sample of rows (``_SAMPLE_SIZE``, drawn with a fixed seed, the same rows
-    for every seed) gives each seed a bracket [lo, hi] that holds the wanted ranks with
-    overwhelming probability (``_BRACKET_Z`` binomial standard deviations of margin). Each
-    block then only counts its values below lo and keeps those inside [lo, hi] (a few
-    percent of the rows), which are sorted at the end. The counts verify the bracket; should
-    it miss (probability about 1e-6 per seed), that seed's |r| is recomputed and partitioned
-    exactly (``select_order_statistics``). Either way the result is exact; only time differs.
-    Below ``_BRACKET_MIN_ROWS`` rows the bracket is the whole line: every value is kept.
+    for every seed) gives each seed a bracket [lo, hi] that holds the wanted ranks with high
+    probability (``_BRACKET_Z`` binomial standard deviations of margin). Each block then
+    only counts its values below lo and keeps those inside [lo, hi] (a few percent of the
+    rows), from which the ranks are selected at the end. The counts verify the bracket;
+    should it miss (probability about 3e-3 per seed), that seed's |r| is recomputed and
+    partitioned exactly (``select_order_statistics``). Either way the result is exact; only
+    time differs. Below ``_BRACKET_MIN_ROWS`` rows the bracket is the whole line: every
+    value is kept.
 
     Counting uses a (rows, step) uint8 tally of the "below" masks, added up every 255
     blocks, and the kept values are found with one ``flatnonzero`` per block: both much
@@ -371,19 +396,26 @@ class _BracketSelector:
         hi = np.full(n_rows, np.inf)
         if n >= _BRACKET_MIN_ROWS:
             rows = np.sort(np.random.default_rng(_SAMPLE_SEED).integers(0, n, _SAMPLE_SIZE))
-            picked = predictions[:, rows]
-            if ensemble:
-                picked = np.vstack([picked, picked.mean(axis=0)])
-            picked -= ts.y[rows]
+            picked = np.empty((n_rows, _SAMPLE_SIZE))
+            np.take(predictions, rows, axis=1, out=picked[:n_seeds])
+            picked[:n_seeds] -= ts.y[rows]
+            if ensemble:  # as the pass forms it
+                np.add.reduce(picked[:n_seeds], axis=0, out=picked[n_seeds])
+                picked[n_seeds] /= n_seeds
             np.abs(picked, out=picked)
-            picked.sort(axis=1)
             margin = _BRACKET_Z * 0.5 * math.sqrt(_SAMPLE_SIZE)
             j_lo = math.floor(self.ranks[0] / n * _SAMPLE_SIZE - margin)
             j_hi = math.ceil((self.ranks[-1] + 1) / n * _SAMPLE_SIZE + margin)
-            if j_lo >= 0:
-                lo = picked[:, j_lo].copy()
-            if j_hi < _SAMPLE_SIZE:
-                hi = picked[:, j_hi].copy()
+            for k, row in enumerate(picked):
+                # single-pivot partitions (much faster in numpy than a sort, or than one
+                # partition with two pivots); the second only above the first
+                if j_lo >= 0:
+                    row.partition(j_lo)
+                    lo[k] = row[j_lo]
+                if j_hi < _SAMPLE_SIZE:
+                    above = max(j_lo, 0)
+                    row[above:].partition(j_hi - above)
+                    hi[k] = row[j_hi]
         self.lo = lo[:, np.newaxis]
         self.hi = hi[:, np.newaxis]
         self.below = np.zeros(n_rows, dtype=np.int64)
@@ -391,7 +423,9 @@ class _BracketSelector:
         self.tallied = 0  # blocks in the tally since it was last added up
         self.below_mask = np.empty(n_rows * step, dtype=bool)
         self.keep_mask = np.empty(n_rows * step, dtype=bool)
-        self.row_bounds = np.arange(n_rows + 1)
+        self.step = step
+        self.row_numbers = np.arange(n_rows + 1)
+        self.row_starts = self.row_numbers * step  # flat offset of each row in a full block
         self.parts: list[tuple[NDArray[np.float64], NDArray[np.intp]]] = []
 
     def add_block(self, a: NDArray[np.float64]) -> None:
@@ -406,8 +440,8 @@ class _BracketSelector:
         keep = np.less_equal(a, self.hi, out=self.keep_mask[: n_rows * m].reshape(n_rows, m))
         np.not_equal(keep, below, out=keep)  # lo <= a <= hi (a < lo implies a <= hi)
         where = np.flatnonzero(keep)
-        offsets = np.searchsorted(where, self.row_bounds * m)
-        self.parts.append((a.reshape(-1)[where], offsets))
+        starts = self.row_starts if m == self.step else self.row_numbers * m
+        self.parts.append((a.reshape(-1)[where], where.searchsorted(starts)))
 
     def _add_up_tally(self) -> None:
         self.below += self.tally.sum(axis=1, dtype=np.int64)
@@ -422,8 +456,8 @@ class _BracketSelector:
         below = int(self.below[k])
         kept = np.concatenate([vals[off[k] : off[k + 1]] for vals, off in self.parts])
         if below <= self.ranks[0] and below + kept.size > self.ranks[-1]:
-            kept.sort()
-            return {r: float(kept[r - below]) for r in self.ranks}
+            found = select_order_statistics(kept, [r - below for r in self.ranks])
+            return {r: found[r - below] for r in self.ranks}
         return select_order_statistics(exact_values(), self.ranks)
 
 
@@ -467,7 +501,7 @@ def _weighted_median(
 
 def _explained_variance_numerator(
     ts: _TargetStats,
-    prediction_row: Callable[[int], NDArray[np.float64]],
+    residual_row: Callable[[int], NDArray[np.float64]],
     k: int,
     sum_residual: float,
     sum_squared: float,
@@ -477,8 +511,9 @@ def _explained_variance_numerator(
     mean_sq = sum_squared / ts.weight_sum
     if mean_r * mean_r < _EV_EXACT_SHARE * mean_sq:
         return mean_sq - mean_r * mean_r
-    # scikit-learn's own two-pass formula, on y - p exactly as it computes it
-    diff = ts.y - prediction_row(k)
+    # scikit-learn's own two-pass formula on its y - p, which is exactly -(p - y): negating
+    # every value changes neither the centred squares nor, bit for bit, their mean
+    diff = residual_row(k)
     diff_mean = np.average(diff, weights=ts.weights)
     diff -= diff_mean
     np.multiply(diff, diff, out=diff)
@@ -497,13 +532,13 @@ def _fraction_explained(numerator: float, denominator: float) -> float:
 def _metrics_from_pass(
     ts: _TargetStats,
     res: _PassResult,
-    prediction_row: Callable[[int], NDArray[np.float64]],
+    residual_row: Callable[[int], NDArray[np.float64]],
     rows: slice = slice(None),
 ) -> dict[str, NDArray[np.float64]]:
     """Metric values, one per prediction row of ``res`` selected by ``rows``.
 
-    ``prediction_row(k)`` returns row k's predictions, needed only for the explained
-    variance's two-pass fallback.
+    ``residual_row(k)`` returns row k's residuals (a fresh array), needed only for the
+    explained variance's two-pass fallback.
     """
     indices = range(res.sum_squared.size)[rows]
     n = ts.y.size
@@ -514,7 +549,7 @@ def _metrics_from_pass(
     for j, k in enumerate(indices):
         r2[j] = math.nan if n < 2 else _fraction_explained(sum_sq[j], ts.r2_denominator)
         ev_num = _explained_variance_numerator(
-            ts, prediction_row, k, float(res.sum_residual[k]), float(res.sum_squared[k])
+            ts, residual_row, k, float(res.sum_residual[k]), float(res.sum_squared[k])
         )
         ev[j] = _fraction_explained(ev_num, ts.ev_denominator)
     assert res.median is not None
@@ -531,18 +566,27 @@ def _metrics_from_pass(
     return {name: out[name] for name in METRICS}
 
 
-def _rows_of(
-    predictions: NDArray[np.float64], res: _PassResult
+def _residual_rows(
+    predictions: NDArray[np.float64],
+    y: NDArray[np.float64],
+    ensemble_residual: NDArray[np.float64] | None,
 ) -> Callable[[int], NDArray[np.float64]]:
-    """``prediction_row`` for ``_metrics_from_pass``: the seeds, then the ensemble row."""
+    """Row k's residuals as a fresh (n,) array: p_k - y for the seeds, then the ensemble's."""
 
-    def prediction_row(k: int) -> NDArray[np.float64]:
+    def residual_row(k: int) -> NDArray[np.float64]:
         if k < predictions.shape[0]:
-            return predictions[k]
-        assert res.ensemble is not None
-        return res.ensemble
+            return np.subtract(predictions[k], y)
+        assert ensemble_residual is not None
+        return ensemble_residual.copy()
 
-    return prediction_row
+    return residual_row
+
+
+def _rows_of(
+    predictions: NDArray[np.float64], res: _PassResult, y: NDArray[np.float64]
+) -> Callable[[int], NDArray[np.float64]]:
+    """``residual_row`` for ``_metrics_from_pass``: the seeds, then the ensemble row."""
+    return _residual_rows(predictions, y, res.ensemble_residual)
 
 
 # --------------------------------------------------------------------------------------
@@ -577,7 +621,7 @@ def regression_metrics(
     with np.errstate(over="ignore", invalid="ignore"):  # overflowing residuals give inf
         ts = _target_stats(y, w)
         res = _fused_pass(ts, p)
-        return _metrics_from_pass(ts, res, _rows_of(p, res))
+        return _metrics_from_pass(ts, res, _rows_of(p, res, y))
 
 
 def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[np.float64]:
@@ -590,10 +634,9 @@ def regression_row_losses(y_true: ArrayLike, predictions: ArrayLike) -> NDArray[
     p = as_seed_predictions(predictions, y.size, check_finite=False)  # the pass checks
     with np.errstate(over="ignore", invalid="ignore"):
         ts = _target_stats(y, None)
-        res = _fused_pass(ts, p, median=False, row_squared=True)
-    rows = res.row_squared
-    assert rows is not None
-    return np.divide(rows, p.shape[0], out=rows)
+        res = _fused_pass(ts, p, median=False, row_loss=True)
+    assert res.row_loss is not None
+    return res.row_loss
 
 
 def ensemble_prediction(predictions: ArrayLike) -> NDArray[np.float64]:
@@ -746,16 +789,16 @@ def _decomposition(
     wsum = ts.weight_sum
     mean_seed_loss = float(res.sum_squared[:n_seeds].sum()) / (n_seeds * wsum)
     ensemble_loss = float(res.sum_squared[n_seeds]) / wsum
-    # |p| <= |y| + |r| bounds every prediction; forming the seed mean pbar = sum_k p_k / K
-    # (serial sum, one division) errs by at most K u max|p| per row
-    largest = (ts.max_abs + float(res.max_absolute[:n_seeds].max())) * (1.0 + 1e-12)
+    # the ensemble's residual e = (sum_k r_k) / K (serial sum, one division) errs by at most
+    # K u max|r| per row, plus u max|r| from rounding the residuals r = p - y themselves
+    largest = float(res.max_absolute[:n_seeds].max()) * (1.0 + 1e-12)
     found = _squared_loss_from_losses(
         mean_seed_loss,
         ensemble_loss,
         sigma2,
         n_seeds=n_seeds,
         loss_relative_error=res.squared_relative_error,
-        residual_error=n_seeds * _UNIT_ROUNDOFF * largest,
+        residual_error=(n_seeds + 1) * _UNIT_ROUNDOFF * largest,
     )
     if found is not None:
         return found
@@ -796,19 +839,19 @@ def _report(
             p,
             ensemble=True,
             median_interval_level=level if with_intervals else None,
-            row_squared=True,
+            row_loss=True,
             row_absolute=with_intervals,
         )
         if not np.isfinite(res.sum_squared).all():  # finite input (the pass checked it)
             raise ScoringInputError("predictions", _OVERFLOW_MESSAGE)
-        rows = _rows_of(p, res)
+        rows = _rows_of(p, res, y)
         per_seed = _metrics_from_pass(ts, res, rows, slice(0, n_seeds))
         ensemble = {
             name: float(v[0])
             for name, v in _metrics_from_pass(ts, res, rows, slice(n_seeds, None)).items()
         }
-        assert res.row_squared is not None
-        row_losses = np.divide(res.row_squared, n_seeds, out=res.row_squared)
+        assert res.row_loss is not None
+        row_losses = res.row_loss
 
         train_scores = None
         train_row_losses = None
@@ -820,14 +863,14 @@ def _report(
                 train_predictions, ty.size, name="train_predictions", check_finite=False
             )
             tts = _target_stats(ty, None)
-            tres = _fused_pass(tts, tp, name="train_predictions", row_squared=True)
+            tres = _fused_pass(tts, tp, name="train_predictions", row_loss=True)
             if not np.isfinite(tres.sum_squared).all():
                 raise ScoringInputError("train_predictions", _OVERFLOW_MESSAGE)
-            train_scores = _headline(_metrics_from_pass(tts, tres, _rows_of(tp, tres)))
-            assert tres.row_squared is not None
-            train_row_losses = np.divide(tres.row_squared, tp.shape[0], out=tres.row_squared)
+            train_scores = _headline(_metrics_from_pass(tts, tres, _rows_of(tp, tres, ty)))
+            assert tres.row_loss is not None
+            train_row_losses = tres.row_loss
             baseline_centre = tts.mean
-            baseline_train_loss = float(tts.centred_sq.mean())
+            baseline_train_loss = tts.ev_denominator  # mean of (ty - mean ty)^2
         if train_y_true is None:
             baseline_test_loss = ts.ev_denominator  # weighted mean of (y - mean y)^2
         else:
@@ -930,6 +973,7 @@ def _sweep(
     step = min(n, _SWEEP_ROWS)
     t = _aligned_empty(step)
     v = _aligned_empty(step)
+    cbuf = _aligned_empty(step)
     u_mean, v_mean, pct_mean = centres["mse"], centres["mae"], centres["mape"]
     sums = np.zeros(5)
     for start in range(0, n, step):
@@ -950,18 +994,17 @@ def _sweep(
         add(0, np.subtract(ub, u_mean, out=tb))
         np.divide(res.row_absolute[sl], n_seeds, out=vb)  # v, as _intervals divides
         add(1, np.subtract(vb, v_mean, out=tb))
-        vb *= ts.inverse_scale[sl]
+        vb *= ts.inverse_scale(sl, tb)
         add(2, np.subtract(vb, pct_mean, out=tb))
         if not ratios:
             continue
-        cb = ts.centred_sq[sl]
+        cb = ts.centred_sq(sl, cbuf[:m])
         dev = np.multiply(cb, -centres["r2_ratio"], out=tb)
         dev += ub
         dev -= centres["r2_centre"]
         add(3, dev)
-        assert res.ensemble is not None
-        e = np.subtract(res.ensemble[sl], ts.y[sl], out=vb)  # the ensemble's residual
-        e *= -2.0 * centres["rho"]
+        assert res.ensemble_residual is not None
+        e = np.multiply(res.ensemble_residual[sl], -2.0 * centres["rho"], out=vb)
         e += ub
         dev = np.multiply(cb, -centres["ev_ratio"], out=tb)
         dev += e
@@ -1124,7 +1167,7 @@ def _explained_variance_interval(
         return no_interval(level, "constant targets: explained_variance is set by convention")
     if n < 2:
         return no_interval(level, "needs at least two rows")
-    assert shortcut is not None and res.row_squared is not None
+    assert shortcut is not None and res.row_loss is not None
     weighted = ts.weights is not None
     wsum = ts.weight_sum
     ratio = delta_ratio_from_sums(
@@ -1145,9 +1188,10 @@ def _explained_variance_interval(
                 c = np.einsum("k,kc->c", rbar, predictions[:, sl], out=a[sl])
                 c -= np.multiply(ts.y[sl], total, out=tmp[: stop - start])
                 c *= -2.0 / n_seeds
-                c += res.row_squared[sl]  # the per-row losses averaged over seeds
+                c += res.row_loss[sl]  # the per-row losses averaged over seeds
                 c += shortcut.mean_sq_residuals
-            ratio = delta_ratio_interval(a, ts.centred_sq, ts.weights, level)
+            centred_sq = ts.centred_sq(slice(None), np.empty(n))
+            ratio = delta_ratio_interval(a, centred_sq, ts.weights, level)
     return monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
 
 

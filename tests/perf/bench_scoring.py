@@ -21,6 +21,7 @@ call on a busy 2-core machine can stall on its second thread.
 - ``interval_coverage``: the mean over headline metrics of the coverage of their 95%
   intervals on simulated data with known truth (per metric in
   ``interval_coverage_per_metric``); the median's interval is conservative by design.
+- ``phases_cpu_ms`` (diagnostics): the report's CPU time per phase (``measure_phases``).
 - ``binary_speedup_vs_sklearn``: from ``tests/perf/bench_binary.py``'s ``measure_binary``
   (null, with the reason, if it cannot be imported or run).
 """
@@ -263,10 +264,93 @@ def measure_binary_or_null() -> dict[str, Any]:
     return {"binary_speedup_vs_sklearn": result.get("binary_speedup_vs_sklearn"), "binary": result}
 
 
+# (label, module attribute path) of the report's phases, timed by ``measure_phases``; a
+# phase's time excludes the phases that run inside it (the bracket's parts inside the pass)
+_PHASES = [
+    ("validation", "regression.as_targets"),
+    ("validation", "regression.as_seed_predictions"),
+    ("validation", "regression.as_weights"),
+    ("target_stats", "regression._target_stats"),
+    ("fused_pass_block_loop", "regression._fused_pass"),
+    ("bracket_sample", "regression._BracketSelector.__init__"),
+    ("bracket_scan", "regression._BracketSelector.add_block"),
+    ("median_finish", "regression._BracketSelector.finish_row"),
+    ("metrics", "regression._metrics_from_pass"),
+    ("decomposition", "regression._decomposition"),
+    ("flags", "flags.overfitting_flags"),
+    ("intervals_other", "regression._intervals"),
+    ("intervals_sweep", "regression._sweep"),
+]
+
+
+def measure_phases(n: int = 1_000_000, k: int = 10, repeats: int = 5) -> dict[str, Any]:
+    """Diagnostics: CPU time of each phase of one report (median over ``repeats``), in ms.
+
+    Each phase's function is wrapped in a timer for the duration (a few microseconds per
+    call, about 100 calls per report). ``other`` is the report's time outside every phase.
+    """
+    from service.scoring import flags, regression
+
+    modules = {"regression": regression, "flags": flags}
+    y, preds = _data(n, k)
+    totals: dict[str, float] = {}
+    stack: list[float] = []  # CPU time spent in phases nested inside the running one
+
+    def timed(label: str, fn: Callable[..., Any]) -> Callable[..., Any]:
+        def wrapper(*args: Any, **kwargs: Any) -> Any:
+            start = time.process_time()
+            stack.append(0.0)
+            try:
+                return fn(*args, **kwargs)
+            finally:
+                inner = stack.pop()
+                spent = time.process_time() - start
+                totals[label] = totals.get(label, 0.0) + spent - inner
+                if stack:
+                    stack[-1] += spent
+
+        return wrapper
+
+    originals = []
+    for label, path in _PHASES:
+        module, *attrs = path.split(".")
+        owner = modules[module]
+        for attr in attrs[:-1]:
+            owner = getattr(owner, attr)
+        original = getattr(owner, attrs[-1])
+        originals.append((owner, attrs[-1], original))
+        setattr(owner, attrs[-1], timed(label, original))
+    runs: list[dict[str, float]] = []
+    try:
+        with threadpool_limits(limits=1, user_api="blas"):
+            for _ in range(repeats):
+                totals.clear()
+                start = time.process_time()
+                _regression_report(
+                    y, preds, sample_weight=None, train_y_true=None, train_predictions=None,
+                    noise_variance=None, options=ScoringOptions(), with_intervals=True,
+                )
+                total = time.process_time() - start
+                totals["other"] = total - sum(totals.values())
+                totals["total"] = total
+                runs.append(dict(totals))
+    finally:
+        for owner, attr, original in originals:
+            setattr(owner, attr, original)
+    labels = list(dict.fromkeys([label for label, _ in _PHASES] + ["other", "total"]))
+    return {
+        "phases_cpu_ms": {
+            label: round(1e3 * float(np.median([r.get(label, 0.0) for r in runs])), 2)
+            for label in labels
+        }
+    }
+
+
 def main(argv: list[str]) -> dict[str, Any]:
     args = [int(a) for a in argv[:3]]
     out: dict[str, Any] = {}
     out.update(measure_regression(*args))
+    out.update(measure_phases(*args[:2]))
     out.update(measure_coverage())
     out.update(measure_binary_or_null())
     return out
