@@ -220,8 +220,7 @@ class _PassResult:
     median_low: NDArray[np.float64] | None  # order-statistic interval of the median
     median_high: NDArray[np.float64] | None
     row_loss: NDArray[np.float64] | None  # (n,) mean over the K seeds of r^2
-    row_absolute: NDArray[np.float64] | None  # (n,) sum over the K seeds of |r|
-    ensemble_residual: NDArray[np.float64] | None  # (n,) sum over the K seeds of r, over K
+    moments: dict[str, float] | None  # co-moments of the per-row values (``_RowMoments``)
     squared_relative_error: float  # bound on the relative rounding error of sum_squared
 
 
@@ -234,7 +233,7 @@ def _fused_pass(
     median: bool = True,
     median_interval_level: float | None = None,
     row_loss: bool = False,
-    row_absolute: bool = False,
+    moments: bool = False,
 ) -> _PassResult:
     """Every sum the metrics need, in one sweep over blocks of rows, all seeds at once.
 
@@ -253,6 +252,9 @@ def _fused_pass(
     its seed's sum of squares non-finite, and only then is the input checked elementwise
     (``ScoringInputError`` on ``name``). Non-finite sums of finite input (overflow) are
     returned as they are, for the caller to judge.
+
+    ``moments`` (with ``ensemble`` and ``row_loss``) also accumulates the co-moments of the
+    per-row values that the intervals need (``_RowMoments``), from the same blocks.
     """
     y, w = ts.y, ts.weights
     n_seeds, n = predictions.shape
@@ -267,8 +269,12 @@ def _fused_pass(
     s_pct = np.zeros(n_rows)
     m_abs = np.full(n_rows, -np.inf if w is None else 0.0)
     rows_sq = _aligned_empty(n) if row_loss else None
-    rows_abs = _aligned_empty(n) if row_absolute else None
-    ens = _aligned_empty(n) if ensemble else None
+    row_moments = None
+    if moments:
+        assert ensemble and row_loss
+        ratios = n >= 2 and ts.r2_denominator != 0.0
+        row_moments = _RowMoments(ts, n_seeds, step, ratios)
+        abs_sum = _aligned_empty(step)
 
     half = n // 2
     median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
@@ -288,27 +294,31 @@ def _fused_pass(
         sl = slice(start, stop)
         a = storage[: n_rows * (stop - start)].reshape(n_rows, stop - start)
         np.subtract(predictions[:, sl], y[sl], out=a[:n_seeds])
-        if ens is not None:
+        if ensemble:  # the same operations as _ensemble_residual
             e = np.add.reduce(a[:n_seeds], axis=0, out=a[n_seeds])
             e /= n_seeds
-            ens[sl] = e
         # einsum's row sums run about twice as fast as np.add.reduce(a, axis=1); only the
         # sums of squares, whose error bound the decomposition relies on, stay pairwise
         if w is None:
-            s_r += np.einsum("kc->k", a)
+            inc_r = np.einsum("kc->k", a)
         else:
-            s_r += np.einsum("kc,c->k", a, w[sl])
+            inc_r = np.einsum("kc,c->k", a, w[sl])
+        s_r += inc_r
+        if row_moments is not None:
+            row_moments.start_block(sl, a[n_seeds], float(inc_r[n_seeds]))
         np.abs(a, out=a)  # a = |r| from here
         if w is None:
-            s_abs += np.einsum("kc->k", a)
+            inc_abs = np.einsum("kc->k", a)
             np.maximum(m_abs, np.maximum.reduce(a, axis=1), out=m_abs)
         else:
-            s_abs += np.einsum("kc,c->k", a, w[sl])
+            inc_abs = np.einsum("kc,c->k", a, w[sl])
             np.maximum(m_abs, np.max(a, axis=1, where=ts.positive[sl], initial=0.0), out=m_abs)
+        s_abs += inc_abs
         inv = ts.inverse_scale(sl, scale[: stop - start], weighted=True)
-        s_pct += np.einsum("kc,c->k", a, inv)
-        if rows_abs is not None:
-            np.add.reduce(a[:n_seeds], axis=0, out=rows_abs[sl])
+        inc_pct = np.einsum("kc,c->k", a, inv)
+        s_pct += inc_pct
+        if row_moments is not None:
+            abs_block = np.add.reduce(a[:n_seeds], axis=0, out=abs_sum[: stop - start])
         if selector is not None:
             selector.add_block(a)
         np.multiply(a, a, out=a)  # a = r^2 from here (|r|^2 is r^2 to the bit)
@@ -317,12 +327,26 @@ def _fused_pass(
             rows_sq[sl] /= n_seeds
         if w is not None:
             a *= w[sl]
-        s_sq += np.add.reduce(a, axis=1)  # pairwise: see squared_relative_error
+        inc_sq = np.add.reduce(a, axis=1)  # pairwise: see squared_relative_error
+        s_sq += inc_sq
+        if row_moments is not None:
+            assert rows_sq is not None
+            row_moments.end_block(
+                sl,
+                rows_sq[sl],
+                abs_block,
+                inv if w is None else None,
+                (
+                    float(inc_sq[:n_seeds].sum()) / n_seeds,
+                    float(inc_abs[:n_seeds].sum()) / n_seeds,
+                    float(inc_pct[:n_seeds].sum()) / n_seeds,
+                ),
+            )
 
     if not np.isfinite(s_sq).all():
         require_finite(predictions, name)  # NaN or infinity in the input: the named error
 
-    residual_row = _residual_rows(predictions, y, ens)
+    residual_row = _residual_rows(predictions, y, ensemble)
     med = med_low = med_high = None
     if median:
         med = np.empty(n_rows)
@@ -357,10 +381,124 @@ def _fused_pass(
         median_low=med_low,
         median_high=med_high,
         row_loss=rows_sq,
-        row_absolute=rows_abs,
-        ensemble_residual=ens,
+        moments=None if row_moments is None else row_moments.finish(),
         squared_relative_error=squared_relative_error,
     )
+
+
+_PAIRS = ("uu", "vv", "qq", "bb", "ub", "ee", "ue", "eb")
+"""Co-moments ``_RowMoments`` keeps: u row loss, v mean |r|, q MAPE term, b (y - mean)^2,
+e the ensemble's residual (the last five only for the r2 and explained variance intervals)."""
+
+
+class _RowMoments:
+    """Sums of squared deviations and cross-products of the per-row values the intervals
+    use, accumulated block by block inside the fused pass (no (n,) array of them is kept).
+
+    Per row i, with weight w_i: u = mean over seeds of r^2 (the row loss), v = mean over
+    seeds of |r|, q = v / max(|y|, eps), b = (y - mean y)^2 and e = the ensemble's residual.
+    Within a block the values are centred at the block's own weighted means, which the
+    pass's per-block sums give for free (b's takes one sum), and their products summed: the
+    accuracy of the two-pass formula, with no E[x^2] - E[x]^2 cancellation. Blocks combine
+    exactly by the pairwise formula of Chan, Golub & LeVeque (1979, "Updating formulae and a
+    pairwise algorithm for computing sample variances"):
+    C_xy = sum_j C_xy,j + sum_j W_j (xbar_j - xbar)(ybar_j - ybar).
+    The pass calls ``start_block`` while the block still holds r (for e), ``end_block``
+    once it has the rest.
+    """
+
+    def __init__(self, ts: _TargetStats, n_seeds: int, step: int, ratios: bool) -> None:
+        self.ts = ts
+        self.n_seeds = n_seeds
+        self.ratios = ratios  # also b and e (the r2 and explained variance intervals)
+        self.du, self.dq, self.db, self.de, self.scratch = (
+            _aligned_empty(step) for _ in range(5)
+        )
+        self.block_weights: list[float] = []
+        self.block_means: list[tuple[float, float, float, float, float]] = []  # u v q b e
+        self.sums = [0.0] * len(_PAIRS)
+        self.weight = 0.0  # of the current block
+        self.mean_e = 0.0
+
+    def start_block(self, rows: slice, residual: NDArray[np.float64], sum_e: float) -> None:
+        """The block's ensemble residuals e (before the pass overwrites them) and sum w e."""
+        w = self.ts.weights
+        m = residual.size
+        self.weight = float(m) if w is None else float(np.einsum("i->", w[rows]))
+        if self.ratios and self.weight > 0.0:
+            self.mean_e = sum_e / self.weight
+            np.subtract(residual, self.mean_e, out=self.de[:m])
+
+    def end_block(
+        self,
+        rows: slice,
+        row_loss: NDArray[np.float64],
+        abs_sum: NDArray[np.float64],
+        inverse_scale: NDArray[np.float64] | None,
+        sums: tuple[float, float, float],
+    ) -> None:
+        """The block's row losses u, ``abs_sum`` = K v (overwritten), 1 / max(|y|, eps)
+        (None: formed here) and the block's weighted sums of u, v and q from the pass."""
+        weight = self.weight
+        if not weight > 0.0:  # every weight of the block is zero: it adds nothing
+            return
+        ts, k = self.ts, float(self.n_seeds)
+        wb = None if ts.weights is None else ts.weights[rows]
+        m = row_loss.size
+        du, dq, scratch = self.du[:m], self.dq[:m], self.scratch[:m]
+        mean_u, mean_v, mean_q = (s / weight for s in sums)
+        np.subtract(row_loss, mean_u, out=du)
+        if inverse_scale is None:
+            inverse_scale = ts.inverse_scale(rows, scratch)
+        # K v and K q, centred: the 1 / K is applied to their sums in ``finish``
+        np.multiply(abs_sum, inverse_scale, out=dq)
+        dq -= k * mean_q
+        dv = np.subtract(abs_sum, k * mean_v, out=abs_sum)
+        sums_ = self.sums
+        if wb is None:
+            sums_[0] += float(np.einsum("i,i->", du, du))
+            sums_[1] += float(np.einsum("i,i->", dv, dv))
+            sums_[2] += float(np.einsum("i,i->", dq, dq))
+        else:
+            sums_[0] += float(np.einsum("i,i,i->", du, du, wb))
+            sums_[1] += float(np.einsum("i,i,i->", dv, dv, wb))
+            sums_[2] += float(np.einsum("i,i,i->", dq, dq, wb))
+        mean_b = 0.0
+        if self.ratios:
+            db, de = self.db[:m], self.de[:m]
+            b = ts.centred_sq(rows, db)
+            sum_b = np.einsum("i->", b) if wb is None else np.einsum("i,i->", b, wb)
+            mean_b = float(sum_b) / weight
+            db -= mean_b
+            if wb is not None:  # weight one factor of the remaining products
+                np.multiply(du, wb, out=du)
+                np.multiply(de, wb, out=scratch)
+                np.multiply(db, wb, out=dq)
+                wdb, wde = dq, scratch
+            else:
+                wdb, wde = db, de
+            sums_[3] += float(np.einsum("i,i->", wdb, db))
+            sums_[4] += float(np.einsum("i,i->", du, db))
+            sums_[5] += float(np.einsum("i,i->", wde, de))
+            sums_[6] += float(np.einsum("i,i->", du, de))
+            sums_[7] += float(np.einsum("i,i->", wde, db))
+        self.block_weights.append(weight)
+        self.block_means.append((mean_u, mean_v, mean_q, mean_b, self.mean_e))
+
+    def finish(self) -> dict[str, float]:
+        """The co-moments about the overall weighted means: sum_i w_i (x_i - xbar)(y_i - ybar)."""
+        weights = np.array(self.block_weights)
+        means = np.array(self.block_means).reshape(-1, 5)
+        total = float(weights.sum())
+        centred = means - (weights @ means) / total if total > 0 else means * 0.0
+        index = {"u": 0, "v": 1, "q": 2, "b": 3, "e": 4}
+        scale = {"vv": 1.0 / self.n_seeds**2, "qq": 1.0 / self.n_seeds**2}
+        out = {}
+        for j, name in enumerate(_PAIRS):
+            x, y = centred[:, index[name[0]]], centred[:, index[name[1]]]
+            within = self.sums[j] * scale.get(name, 1.0)
+            out[name] = within + float(np.einsum("j,j,j->", weights, x, y))
+        return out
 
 
 class _BracketSelector:
@@ -566,18 +704,38 @@ def _metrics_from_pass(
     return {name: out[name] for name in METRICS}
 
 
+def _ensemble_residual(
+    predictions: NDArray[np.float64], y: NDArray[np.float64]
+) -> NDArray[np.float64]:
+    """The ensemble's residual e = (sum_k (p_k - y)) / K, shape (n,), by the very operations
+    of the fused pass (so to the bit what it used), in blocks without a (K, n) temporary.
+
+    Only needed when a fallback looks at e row by row (a missed median bracket, the
+    explained variance's two-pass formula); the pass itself keeps no (n,) copy of e.
+    """
+    n_seeds, n = predictions.shape
+    out = np.empty(n)
+    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_seeds))
+    buf = np.empty((n_seeds, step))
+    for start in range(0, n, step):
+        stop = min(start + step, n)
+        r = np.subtract(predictions[:, start:stop], y[start:stop], out=buf[:, : stop - start])
+        e = np.add.reduce(r, axis=0, out=out[start:stop])
+        e /= n_seeds
+    return out
+
+
 def _residual_rows(
-    predictions: NDArray[np.float64],
-    y: NDArray[np.float64],
-    ensemble_residual: NDArray[np.float64] | None,
+    predictions: NDArray[np.float64], y: NDArray[np.float64], ensemble: bool
 ) -> Callable[[int], NDArray[np.float64]]:
-    """Row k's residuals as a fresh (n,) array: p_k - y for the seeds, then the ensemble's."""
+    """Row k's residuals as a fresh (n,) array: p_k - y for the seeds, then (with
+    ``ensemble``) the ensemble's."""
 
     def residual_row(k: int) -> NDArray[np.float64]:
         if k < predictions.shape[0]:
             return np.subtract(predictions[k], y)
-        assert ensemble_residual is not None
-        return ensemble_residual.copy()
+        assert ensemble
+        return _ensemble_residual(predictions, y)
 
     return residual_row
 
@@ -586,7 +744,7 @@ def _rows_of(
     predictions: NDArray[np.float64], res: _PassResult, y: NDArray[np.float64]
 ) -> Callable[[int], NDArray[np.float64]]:
     """``residual_row`` for ``_metrics_from_pass``: the seeds, then the ensemble row."""
-    return _residual_rows(predictions, y, res.ensemble_residual)
+    return _residual_rows(predictions, y, res.sum_squared.size > predictions.shape[0])
 
 
 # --------------------------------------------------------------------------------------
@@ -840,7 +998,7 @@ def _report(
             ensemble=True,
             median_interval_level=level if with_intervals else None,
             row_loss=True,
-            row_absolute=with_intervals,
+            moments=with_intervals,
         )
         if not np.isfinite(res.sum_squared).all():  # finite input (the pass checked it)
             raise ScoringInputError("predictions", _OVERFLOW_MESSAGE)
@@ -895,7 +1053,7 @@ def _report(
     intervals: dict[str, Interval] = {}
     if with_intervals:
         with np.errstate(over="ignore", invalid="ignore"):
-            intervals = _intervals(ts, p, res, row_losses, level)
+            intervals = _intervals(ts, p, res, level)
 
     notes = []
     if n < 2:
@@ -937,87 +1095,10 @@ def _report(
 # Intervals
 # --------------------------------------------------------------------------------------
 
-_SWEEP_ROWS = 1 << 14
-"""Rows per block of the interval sweep: its few temporaries stay in cache."""
-
-
-@dataclass
-class _SweepResult:
-    """Sums of squared deviations from one sweep over the per-row values (weighted)."""
-
-    row_loss: float  # sum w (u - mean u)^2, u the row loss averaged over seeds
-    row_absolute: float  # sum w (v - mean v)^2, v the |r| averaged over seeds
-    row_percentage: float  # sum w (v / max(|y|, eps) - its mean)^2
-    r2: float  # sum w (u - R b - c)^2 (delta method for R = mean u / mean b)
-    explained_variance: float  # the same for a'_i = u_i - 2 rho e_i + const
-
-
-def _sweep(
-    ts: _TargetStats,
-    res: _PassResult,
-    row_losses: NDArray[np.float64],
-    n_seeds: int,
-    centres: dict[str, float],
-    ratios: bool,
-) -> _SweepResult:
-    """Every sum of squared deviations the intervals need, in one sweep over the rows.
-
-    The centres (means, ratios) come from the fused pass's sums, so one blocked sweep
-    replaces two passes per interval; the deviations are formed from the centred values
-    (two-pass accuracy: no E[x^2] - E[x]^2 cancellation). ``ratios=False`` skips the r2
-    and explained variance sums (constant targets or fewer than two rows).
-    """
-    w = ts.weights
-    n = row_losses.size
-    assert res.row_absolute is not None
-    step = min(n, _SWEEP_ROWS)
-    t = _aligned_empty(step)
-    v = _aligned_empty(step)
-    cbuf = _aligned_empty(step)
-    u_mean, v_mean, pct_mean = centres["mse"], centres["mae"], centres["mape"]
-    sums = np.zeros(5)
-    for start in range(0, n, step):
-        stop = min(start + step, n)
-        sl = slice(start, stop)
-        m = stop - start
-        tb, vb = t[:m], v[:m]
-        wb = None if w is None else w[sl]
-        ub = row_losses[sl]
-
-        def add(j: int, dev: NDArray[np.float64], wb=wb) -> None:
-            if wb is None:
-                sums[j] += np.einsum("i,i->", dev, dev)
-            else:
-                np.multiply(dev, dev, out=dev)
-                sums[j] += np.einsum("i,i->", dev, wb)
-
-        add(0, np.subtract(ub, u_mean, out=tb))
-        np.divide(res.row_absolute[sl], n_seeds, out=vb)  # v, as _intervals divides
-        add(1, np.subtract(vb, v_mean, out=tb))
-        vb *= ts.inverse_scale(sl, tb)
-        add(2, np.subtract(vb, pct_mean, out=tb))
-        if not ratios:
-            continue
-        cb = ts.centred_sq(sl, cbuf[:m])
-        dev = np.multiply(cb, -centres["r2_ratio"], out=tb)
-        dev += ub
-        dev -= centres["r2_centre"]
-        add(3, dev)
-        assert res.ensemble_residual is not None
-        e = np.multiply(res.ensemble_residual[sl], -2.0 * centres["rho"], out=vb)
-        e += ub
-        dev = np.multiply(cb, -centres["ev_ratio"], out=tb)
-        dev += e
-        dev -= centres["ev_offset"]
-        add(4, dev)
-    return _SweepResult(*(float(x) for x in sums))
-
-
 def _intervals(
     ts: _TargetStats,
     predictions: NDArray[np.float64],
     res: _PassResult,
-    row_losses: NDArray[np.float64],
     level: float,
 ) -> dict[str, Interval]:
     """One interval per headline metric (each the mean over seeds of a per-seed metric).
@@ -1033,9 +1114,12 @@ def _intervals(
       (binomial ranks; Woodruff's with weights), combined by ``seed_mean_interval``;
     - ``max_error``: none (an extreme order statistic has no useful large-sample interval).
 
-    The means come from the fused pass's sums and every sum of squared deviations from one
-    sweep (``_sweep``); the formulas are those of ``normal_interval`` and
-    ``delta_ratio_interval``.
+    The means come from the fused pass's sums and every sum of squared deviations from the
+    co-moments it accumulated (``_RowMoments``); the formulas are those of
+    ``normal_interval`` and ``delta_ratio_interval``. With R = mean(a) / mean(b), the delta
+    method's sum of squares sum w (a - R b - c)^2 is C_aa - 2 R C_ab + R^2 C_bb, with the
+    co-moments C; for the explained variance's one-pass form a' = u - 2 rho e + const it
+    expands over u, e and b likewise.
     """
     w = ts.weights
     n_seeds, n = predictions.shape
@@ -1050,40 +1134,44 @@ def _intervals(
     }
     b_mean = ts.ev_denominator  # weighted mean of (y - mean y)^2
     ratios = n >= 2 and ts.r2_denominator != 0.0 and b_mean > 0.0
+    assert res.moments is not None
+    c = res.moments
     ev: _ExplainedVarianceShortcut | None = None
+    r2_ssd = ev_ssd = math.nan
     if ratios:
-        centres["r2_ratio"] = centres["mse"] / b_mean
-        centres["r2_centre"] = centres["mse"] - centres["r2_ratio"] * b_mean
+        r = centres["mse"] / b_mean
+        r2_ssd = max(0.0, c["uu"] - 2.0 * r * c["ub"] + r * r * c["bb"])
         ev = _explained_variance_shortcut(ts, res, n_seeds, centres["mse"])
-        centres["rho"] = ev.rho
-        centres["ev_ratio"] = ev.mean / b_mean
-        # a'_i - R b_i - centre = u_i - 2 rho e_i - R b_i + (constant - centre)
-        centres["ev_offset"] = (ev.mean - centres["ev_ratio"] * b_mean) - ev.constant
-    sweep = _sweep(ts, res, row_losses, n_seeds, centres, ratios)
+        r, t = ev.mean / b_mean, -2.0 * ev.rho  # a' - R b = u + t e - R b + const
+        ev_ssd = max(
+            0.0,
+            c["uu"] + t * t * c["ee"] + r * r * c["bb"]
+            + 2.0 * t * c["ue"] - 2.0 * r * c["ub"] - 2.0 * t * r * c["eb"],
+        )
 
     def normal(mean: float, ssd: float) -> Interval:
         sd = sd_from_sum_of_squares(ssd, wsum, n_eff, weighted)
         return normal_interval_from_moments(mean, sd, n_eff, level, weighted=weighted)
 
     out: dict[str, Interval] = {}
-    out["mse"] = normal(centres["mse"], sweep.row_loss)
+    out["mse"] = normal(centres["mse"], c["uu"])
     out["rmse"] = monotone_interval(
         out["mse"],
         lambda v: math.sqrt(max(v, 0.0)),
         note="square root of the mse interval's endpoints",
     )
-    out["mae"] = normal(centres["mae"], sweep.row_absolute)
+    out["mae"] = normal(centres["mae"], c["vv"])
     if n < 2:
         out["r2"] = no_interval(level, "r2 is undefined with a single row")
     elif ts.r2_denominator == 0.0:
         out["r2"] = no_interval(level, "constant targets: r2 is set by convention")
     else:
         ratio = delta_ratio_from_sums(
-            centres["mse"], b_mean, sweep.r2, wsum, n_eff, weighted, level
+            centres["mse"], b_mean, r2_ssd, wsum, n_eff, weighted, level
         )
         out["r2"] = monotone_interval(ratio, lambda v: 1.0 - v, decreasing=True)
     out["explained_variance"] = _explained_variance_interval(
-        ts, predictions, res, level, ev, sweep.explained_variance, n_eff
+        ts, predictions, res, level, ev, ev_ssd, n_eff
     )
     assert res.median_low is not None and res.median_high is not None
     lows, highs = res.median_low[:n_seeds], res.median_high[:n_seeds]  # not the ensemble row
@@ -1100,7 +1188,7 @@ def _intervals(
     out["max_error"] = no_interval(
         level, "the maximum is an extreme order statistic: no useful large-sample interval"
     )
-    out["mape"] = normal(centres["mape"], sweep.row_percentage)
+    out["mape"] = normal(centres["mape"], c["qq"])
     return {name: out[name] for name in METRICS}
 
 
@@ -1155,7 +1243,7 @@ def _explained_variance_interval(
     (K, n) predictions). Writing rbar_k = rho + delta_k (rho their mean), c_i = K rho e_i +
     t_i, with e_i the seed-averaged prediction's residual and t_i = sum_k delta_k (p_ki -
     pbar_i). Dropping t_i leaves a'_i = u_i - 2 rho e_i + const (const chosen so that
-    mean(a') = mean(a)), a pass over n values only (done in ``_sweep``). By Cauchy-Schwarz
+    mean(a') = mean(a)), needing only co-moments of u, e and b (``_RowMoments``). By Cauchy-Schwarz
     the root mean square of (2 / K) t_i is at most (2 / sqrt(K)) |delta| sqrt(V), V the
     variance term (mean MSE over seeds minus the ensemble's MSE), and the interval's
     standard error moves by at most that much over mean(b) sqrt(n_eff). When that bound is

@@ -278,8 +278,9 @@ _PHASES = [
     ("metrics", "regression._metrics_from_pass"),
     ("decomposition", "regression._decomposition"),
     ("flags", "flags.overfitting_flags"),
-    ("intervals_other", "regression._intervals"),
-    ("intervals_sweep", "regression._sweep"),
+    ("interval_moments", "regression._RowMoments.add_block"),
+    ("interval_moments", "regression._RowMoments.finish"),
+    ("intervals", "regression._intervals"),
 ]
 
 

@@ -133,6 +133,9 @@ def test_a_missed_bracket_falls_back_to_an_exact_partition(monkeypatch, margin: 
     iv = report.intervals["median_absolute_error"]
     assert iv.low == pytest.approx(np.mean([c.low for c in cis]), rel=1e-15)
     assert iv.high == pytest.approx(np.mean([c.high for c in cis]), rel=1e-15)
+    # the ensemble row misses too and is recomputed; reference: sklearn on the seed mean
+    ens = skm.median_absolute_error(y, preds.mean(axis=0))
+    assert report.ensemble["median_absolute_error"] == pytest.approx(ens, rel=RTOL)
 
 
 def test_ties_and_integer_valued_data_match_sklearn() -> None:
@@ -812,18 +815,30 @@ def test_report_decomposition_is_accurate_on_numacc_seeds_and_tiny_variances(
 
 
 @pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("blocks", ["default", "many_sorted"])
 def test_r2_and_explained_variance_intervals_are_the_delta_method_written_out(
-    monkeypatch, weighted: bool
+    monkeypatch, weighted: bool, blocks: str
 ) -> None:
-    # the report forms these intervals from the pass's sums and one sweep; here they are
-    # written out from their definitions and the statsmodels normal interval
+    # the report forms these intervals from the pass's sums and the co-moments it gathers
+    # block by block; here they are written out from their definitions and the statsmodels
+    # normal interval. "many_sorted": rows sorted by target and tiny blocks, so that block
+    # means differ widely (the block-combination formula at work), and with weights one
+    # block of zero weight
     from service.scoring import regression
 
     rng = np.random.default_rng(44 + weighted)
     n, k = 3000, 3
     y = rng.gamma(3.0, size=n)
     preds = y + 0.3 + 0.8 * rng.normal(size=n) + 0.5 * rng.normal(size=(k, n))
+    preds += 0.1 * y * rng.normal(size=n)  # errors that grow with the target
     w = rng.uniform(0.2, 2.0, size=n) if weighted else None
+    if blocks == "many_sorted":
+        monkeypatch.setattr(regression, "_BLOCK_VALUES", 64)
+        monkeypatch.setattr(regression, "_MIN_BLOCK_ROWS", 16)
+        order = np.argsort(y)
+        y, preds = y[order], preds[:, order]
+        if w is not None:
+            w[:40] = 0.0
     level = 0.9
     wsum = float(n) if w is None else float(w.sum())
     n_eff = float(n) if w is None else wsum**2 / float((w**2).sum())
@@ -844,6 +859,16 @@ def test_r2_and_explained_variance_intervals_are_the_delta_method_written_out(
     report = regression.regression_report(y, preds, sample_weight=w, options=options)
     iv = report.intervals["r2"]
     assert (iv.low, iv.high) == pytest.approx(delta((r**2).mean(axis=0)), rel=1e-10)
+    # and the normal intervals of the per-row means, the same way
+    for name, rows in [
+        ("mse", (r**2).mean(axis=0)),
+        ("mae", np.abs(r).mean(axis=0)),
+        ("mape", np.abs(r).mean(axis=0) / np.maximum(np.abs(y), MAPE_EPSILON)),
+    ]:
+        # reference: statsmodels DescrStatsW.zconfint_mean (weights rescaled to Kish's n)
+        ref = DescrStatsW(rows, weights=scaled).zconfint_mean(alpha=1 - level)
+        got = report.intervals[name]
+        assert (got.low, got.high) == pytest.approx(ref, rel=1e-11), name
     # explained variance, exact form: a_i = mean_k (r_ki - rbar_k)^2
     monkeypatch.setattr(regression, "_EV_SHORTCUT_TOLERANCE", 0.0)
     report = regression.regression_report(y, preds, sample_weight=w, options=options)
@@ -858,3 +883,19 @@ def test_r2_and_explained_variance_intervals_are_the_delta_method_written_out(
     e = preds.mean(axis=0) - y
     shortcut = (r**2).mean(axis=0) - 2 * rho * e + 2 * rho**2 - np.mean(rbar**2)
     assert (iv.low, iv.high) == pytest.approx(delta(shortcut), rel=1e-10)
+
+
+def test_biased_seeds_take_the_two_pass_explained_variance_for_the_ensemble_too() -> None:
+    # mean residual well above its spread: every row's explained variance numerator comes
+    # from scikit-learn's two-pass formula, the ensemble's from its recomputed residuals
+    rng = np.random.default_rng(45)
+    n = 5000
+    y = rng.normal(10.0, 2.0, size=n)
+    preds = y + 3.0 + 0.5 * rng.normal(size=n) + 0.2 * rng.normal(size=(3, n))
+    report = regression_report(y, preds)
+    for k in range(3):
+        # reference: sklearn.metrics.explained_variance_score
+        ref = skm.explained_variance_score(y, preds[k])
+        assert report.details["per_seed"]["explained_variance"][k] == pytest.approx(ref, rel=RTOL)
+    ref = skm.explained_variance_score(y, preds.mean(axis=0))  # reference: sklearn
+    assert report.ensemble["explained_variance"] == pytest.approx(ref, rel=RTOL)
