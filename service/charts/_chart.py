@@ -280,11 +280,9 @@ def cache_key(kind: str, payload: Mapping[str, Any]) -> str:
 # --------------------------------------------------------------------- input reading helpers
 
 
-def number(value: Any, where: str, *, required: bool = True) -> float | None:
-    """A finite float from JSON input; None (allowed unless ``required``) for null."""
+def optional_number(value: Any, where: str) -> float | None:
+    """A finite float from JSON input, or None for null (an undefined metric)."""
     if value is None:
-        if required:
-            raise ChartInputError(where, "is null (the metric is undefined); nothing to draw")
         return None
     if isinstance(value, (bool, str, bytes)):
         raise ChartInputError(where, f"must be a number, got {value!r}")
@@ -292,10 +290,14 @@ def number(value: Any, where: str, *, required: bool = True) -> float | None:
         f = float(value)  # int, float, numpy scalars
     except (TypeError, ValueError):
         raise ChartInputError(where, f"must be a number, got {value!r}") from None
-    if not math.isfinite(f):
-        if required:
-            raise ChartInputError(where, f"must be finite, got {f!r}")
-        return None
+    return f if math.isfinite(f) else None
+
+
+def number(value: Any, where: str) -> float:
+    """A finite float from JSON input; null or a non-finite value is refused."""
+    f = optional_number(value, where)
+    if f is None:
+        raise ChartInputError(where, f"is {value!r}, not a finite number; nothing to draw")
     return f
 
 
@@ -314,7 +316,8 @@ __all__ = [
     "cache_key",
     "format_number",
     "format_share",
-    "number",
     "mapping",
+    "number",
+    "optional_number",
     "plain",
 ]

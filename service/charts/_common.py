@@ -6,6 +6,7 @@ import textwrap
 
 from matplotlib.axes import Axes
 
+from . import style
 from ._chart import Canvas, ChartInputError, plain
 
 LOSS_NAMES = {"squared": "squared loss", "zero_one": "zero-one loss", "log": "log loss"}
@@ -73,10 +74,26 @@ def legend_below(
     pairs = sorted(zip(found, found_labels, strict=True), key=lambda pair: rank(pair[1]))
     handles = [h for h, _ in pairs]
     labels = [label for _, label in pairs]
-    columns = narrow_columns if canvas.narrow else wide_columns
+    columns = min(narrow_columns if canvas.narrow else wide_columns, len(handles))
+    width = canvas.figure.get_figwidth() * 72.0 * 0.96
+    while columns > 1 and _legend_width(labels, columns) > width:
+        columns -= 1
     canvas.figure.legend(
-        handles,
-        [plain(label) for label in labels],
-        loc="outside lower center",
-        ncols=min(columns, len(handles)),
+        handles, [plain(label) for label in labels], loc="outside lower center", ncols=columns
     )
+
+
+def _legend_width(labels: list[str], columns: int) -> float:
+    """Estimated width in points of a legend of ``labels`` in ``columns`` columns.
+
+    Matplotlib fills legend columns top to bottom; DejaVu Sans averages about 0.55 em per
+    character. An estimate is enough: it only picks a column count that does not overflow.
+    """
+    size = style.NOTE_SIZE
+    rows = -(-len(labels) // columns)
+    total = 0.0
+    for c in range(columns):
+        column = labels[c * rows : (c + 1) * rows]
+        if column:
+            total += (1.8 + 0.8 + 1.4) * size + 0.55 * size * max(len(t) for t in column)
+    return total

@@ -18,7 +18,16 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import FancyArrowPatch
 
 from . import style
-from ._chart import Canvas, Chart, ChartInputError, format_number, format_share, mapping, number
+from ._chart import (
+    Canvas,
+    Chart,
+    ChartInputError,
+    format_number,
+    format_share,
+    mapping,
+    number,
+    optional_number,
+)
 from ._common import fit, legend_below, loss_name, title
 
 _BAR_HEIGHT = 0.46
@@ -77,18 +86,17 @@ def decomposition_chart(bias_variance: Mapping[str, Mapping[str, Any]], *, loss:
     bias = number(d.get("bias"), f"{where}.bias")
     variance = number(d.get("variance"), f"{where}.variance")
     ensemble = number(d.get("ensemble_loss"), f"{where}.ensemble_loss")
-    noise = number(d.get("noise"), f"{where}.noise", required=False)
-    extra = d.get("extra") or {}
-    assert expected is not None and bias is not None and variance is not None
-    assert ensemble is not None
+    noise = optional_number(d.get("noise"), f"{where}.noise")
+    extra = mapping(d.get("extra") or {}, f"{where}.extra")
+    # zero-one loss: the variance enters with a sign (Domingos 2000)
     signed = loss == "zero_one" and "unbiased_variance" in extra and "biased_variance" in extra
     unbiased = (
         number(extra.get("unbiased_variance"), f"{where}.extra.unbiased_variance")
         if signed
-        else None
+        else 0.0
     )
     biased = (
-        number(extra.get("biased_variance"), f"{where}.extra.biased_variance") if signed else None
+        number(extra.get("biased_variance"), f"{where}.extra.biased_variance") if signed else 0.0
     )
     gain = expected - ensemble
     share = variance / expected if expected != 0.0 else 0.0
@@ -121,7 +129,6 @@ def decomposition_chart(bias_variance: Mapping[str, Mapping[str, Any]], *, loss:
         parts.append(f"noise {format_number(noise)}")
     parts.append(f"{bias_label} {format_number(bias)}")
     if signed:
-        assert unbiased is not None and biased is not None
         parts.append(f"unbiased variance {format_number(unbiased)}")
         variance_text = (
             f" - biased variance {format_number(biased)} (variance in total "
@@ -147,7 +154,6 @@ def decomposition_chart(bias_variance: Mapping[str, Mapping[str, Any]], *, loss:
         title(canvas, axes, chart_title)
         ends = [expected, ensemble, (noise or 0.0) + bias + variance]
         if signed:
-            assert unbiased is not None
             ends.append(bias + unbiased)
         xmax = max(max(ends), 0.0)
         xmin = min(min(ends), 0.0, bias)
@@ -171,7 +177,6 @@ def decomposition_chart(bias_variance: Mapping[str, Mapping[str, Any]], *, loss:
         _segment_label(axes, left, bias, span, style.PAPER)
         left += bias
         if signed:
-            assert unbiased is not None and biased is not None
             (bar,) = axes.barh(
                 _TOP,
                 unbiased,

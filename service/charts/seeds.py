@@ -16,7 +16,7 @@ from typing import Any
 from matplotlib.lines import Line2D
 
 from . import style
-from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, number
+from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, optional_number
 from ._common import direction_text, fit, legend_below, metric_direction, title
 
 _ROW_SEEDS, _ROW_INTERVAL, _ROW_ENSEMBLE = 2.0, 1.0, 0.0
@@ -87,21 +87,19 @@ def seed_spread_chart(
         raise ChartInputError(
             "seeds", f"has {len(labels)} labels for {len(per_seed_values)} per-seed values"
         )
-    values = [
-        number(v, f"per_seed_values[{k}]", required=False) for k, v in enumerate(per_seed_values)
-    ]
+    values = [optional_number(v, f"per_seed_values[{k}]") for k, v in enumerate(per_seed_values)]
     drawn = [(k, v) for k, v in enumerate(values) if v is not None]
     if not drawn:
         raise ChartInputError("per_seed_values", f"{metric} is undefined for every seed")
-    ensemble = number(ensemble_value, "ensemble_value", required=False)
-    headline = number(score, "score", required=False)
+    ensemble = optional_number(ensemble_value, "ensemble_value")
+    headline = optional_number(score, "score")
     low = high = level = None
     method = note_text = ""
     if interval is not None:
         iv = mapping(interval, "interval")
-        low = number(iv.get("low"), "interval.low", required=False)
-        high = number(iv.get("high"), "interval.high", required=False)
-        level = number(iv.get("level"), "interval.level", required=False)
+        low = optional_number(iv.get("low"), "interval.low")
+        high = optional_number(iv.get("high"), "interval.high")
+        level = optional_number(iv.get("level"), "interval.level")
         method = str(iv.get("method") or "")
         note_text = str(iv.get("note") or "")
         if (low is None) != (high is None):

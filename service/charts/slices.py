@@ -17,7 +17,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Polygon
 
 from . import style
-from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, number
+from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, optional_number
 from ._common import direction_text, fit, legend_below, metric_direction, title
 
 
@@ -78,12 +78,12 @@ def slices_chart(
         group = row.get("group")
         if not isinstance(group, str) or not group:
             raise ChartInputError(f"rows[{i}].group", f"must be a group name, got {group!r}")
-        feedback = number(row.get("value"), f"rows[{i}].value", required=False)
-        reserve = number(row.get("reserve_value"), f"rows[{i}].reserve_value", required=False)
+        feedback = optional_number(row.get("value"), f"rows[{i}].value")
+        reserve = optional_number(row.get("reserve_value"), f"rows[{i}].reserve_value")
         tuned = row.get("feedback_tuned")
         flagged = bool(tuned.get("flagged")) if isinstance(tuned, Mapping) else None
         p_value = (
-            number(tuned.get("p_value"), f"rows[{i}].feedback_tuned.p_value", required=False)
+            optional_number(tuned.get("p_value"), f"rows[{i}].feedback_tuned.p_value")
             if isinstance(tuned, Mapping)
             else None
         )

@@ -18,7 +18,7 @@ from typing import Any
 from matplotlib.lines import Line2D
 
 from . import style
-from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, number
+from ._chart import Canvas, Chart, ChartInputError, format_number, mapping, number, optional_number
 from ._common import fit, legend_below, loss_name, title
 
 REGIONS = ("underfit", "optimal", "overfit", "neutral")
@@ -86,9 +86,7 @@ def sweep_chart(sweep: Mapping[str, Any]) -> Chart:
                 "complexity": number(p.get("complexity"), f"sweep.points[{i}].complexity"),
                 "test_loss": number(p.get("test_loss"), f"sweep.points[{i}].test_loss"),
                 "test_loss_se": number(p.get("test_loss_se"), f"sweep.points[{i}].test_loss_se"),
-                "train_loss": number(
-                    p.get("train_loss"), f"sweep.points[{i}].train_loss", required=False
-                ),
+                "train_loss": optional_number(p.get("train_loss"), f"sweep.points[{i}].train_loss"),
                 "bias": number(p.get("bias"), f"sweep.points[{i}].bias"),
                 "variance": number(p.get("variance"), f"sweep.points[{i}].variance"),
                 "region": region,
@@ -104,7 +102,6 @@ def sweep_chart(sweep: Mapping[str, Any]) -> Chart:
     for name, x in (("best_complexity", best_x), ("one_se_complexity", one_se_x)):
         if x not in by_x:
             raise ChartInputError(f"sweep.{name}", f"{x!r} is not the complexity of any point")
-    assert best_x is not None and one_se_x is not None
     best, one_se = by_x[best_x], by_x[one_se_x]
     threshold = best["test_loss"] + best["test_loss_se"]
     log_x = xs[0] > 0 and xs[-1] / xs[0] >= _LOG_RATIO

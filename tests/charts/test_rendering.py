@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import subprocess
 import sys
@@ -15,6 +16,8 @@ import matplotlib
 import numpy as np
 import pytest
 from chartdata import SVG_NS, marks, parse_svg, regression_result, slice_rows, sweep_result
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import service.charts
 from service.charts import (
@@ -22,6 +25,7 @@ from service.charts import (
     ChartInputError,
     cache_key,
     decomposition_chart,
+    format_number,
     render_chart,
     seed_spread_chart,
     slices_chart,
@@ -82,16 +86,19 @@ def test_render_chart_draws_what_the_function_draws() -> None:
     assert error.value.field == "payload" and "colour" in error.value.message
 
 
-def test_same_bytes_in_a_fresh_process(tmp_path: Path) -> None:
-    """Another process (another hash seed, fresh font cache state) renders identical bytes,
-    so a cache shared by server workers never mixes versions."""
+def test_same_bytes_in_a_fresh_process_without_pyplot_or_web_modules(tmp_path: Path) -> None:
+    """Another process (another hash seed) renders identical bytes, so a cache shared by
+    server workers never mixes versions; and neither importing nor rendering loads pyplot
+    (a GUI backend) or a web or database module."""
     sweep = sweep_result()
     source = tmp_path / "sweep.json"
     source.write_text(json.dumps(sweep))
     code = (
         "import hashlib, json, sys; from service.charts import sweep_chart; "
         "c = sweep_chart(json.load(open(sys.argv[1]))); "
-        "print(hashlib.sha256(c.svg()).hexdigest(), hashlib.sha256(c.png()).hexdigest())"
+        "print(hashlib.sha256(c.svg()).hexdigest(), hashlib.sha256(c.png()).hexdigest()); "
+        "print(','.join(m for m in ('matplotlib.pyplot', 'flask', 'sqlalchemy', 'werkzeug') "
+        "if m in sys.modules))"
     )
     out = subprocess.run(
         [sys.executable, "-c", code, str(source)],
@@ -103,17 +110,9 @@ def test_same_bytes_in_a_fresh_process(tmp_path: Path) -> None:
     )
     here = sweep_chart(json.loads(source.read_text()))
     expected = f"{hashlib.sha256(here.svg()).hexdigest()} {hashlib.sha256(here.png()).hexdigest()}"
-    assert out.stdout.strip() == expected
-
-
-def test_import_loads_no_pyplot_and_no_web_module() -> None:
-    code = (
-        "import sys, service.charts; "
-        "bad = [m for m in ('matplotlib.pyplot', 'flask', 'sqlalchemy', 'werkzeug') "
-        "if m in sys.modules]; print(','.join(bad))"
-    )
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
-    assert out.stdout.strip() == ""
+    digests, loaded = (out.stdout.split("\n") + [""])[:2]
+    assert digests == expected
+    assert loaded == ""
 
 
 def test_rendering_neither_reads_nor_changes_global_settings() -> None:
@@ -207,3 +206,46 @@ def test_seed_spread_input_errors_and_undefined_seeds() -> None:
     chart = seed_spread_chart(**dict(payload, interval=no_interval))
     assert "band-interval-0" not in marks(chart.svg())
     assert "No interval: why not." in chart.alt_text
+
+
+def test_sweep_in_the_api_shape() -> None:
+    """``SweepOut`` adds ids, model names and the slice to each point and to the sweep: the
+    chart draws the same, never shows a model name, and states the slice and withheld count."""
+    sweep = sweep_result((1, 2, 3))
+    api = dict(
+        sweep,
+        holdout_id="h1",
+        group="g1",
+        name="depth",
+        slice="feedback",
+        n_withheld=2,
+        points=[
+            dict(p, submission_id=f"s{i}", model=MARKUP) for i, p in enumerate(sweep["points"])
+        ],
+    )
+    plain_svg, api_chart = sweep_chart(sweep).svg(), sweep_chart(api)
+    assert marks(api_chart.svg()).keys() == marks(plain_svg).keys()
+    assert b"script" not in api_chart.svg() and "script" not in api_chart.alt_text
+    assert "on the feedback slice" in api_chart.alt_text
+    assert "2 submissions of the sweep are withheld" in api_chart.alt_text
+
+
+@settings(max_examples=300, derandomize=True, deadline=None)
+@given(st.floats(min_value=-1e12, max_value=1e12, allow_nan=False, allow_infinity=False))
+def test_format_number_keeps_four_significant_digits(value: float) -> None:
+    text = format_number(value)
+    if value == 0.0 or abs(value) < 1e-300:
+        assert float(text) == pytest.approx(value, abs=1e-300)
+        return
+    # four significant digits: within half a unit of the 4th digit (common practice)
+    magnitude = math.floor(math.log10(abs(value)))
+    unit = 10.0 ** (magnitude - 3)
+    assert abs(float(text) - value) <= 0.5 * unit * (1 + 1e-9)
+    digits = text.lstrip("-").split("e")[0].replace(".", "").lstrip("0")
+    assert len(digits) <= max(4, magnitude + 2)  # no more digits than the integer part needs
+
+
+def test_format_number_of_missing_values() -> None:
+    assert format_number(None) == "n/a"
+    assert format_number(float("nan")) == "n/a"
+    assert format_number(float("inf")) == "n/a"
