@@ -417,12 +417,17 @@ def _bad_float_text(chunk: pa.Array) -> NDArray[np.intp]:
 
 
 def floats_from_arrow(
-    column: pa.Array | pa.ChunkedArray, field: str, locate: Locate
+    column: pa.Array | pa.ChunkedArray,
+    field: str,
+    locate: Locate,
+    out: NDArray[np.float64] | None = None,
 ) -> NDArray[np.float64]:
     """A numeric (or, from CSV, text) column as finite-or-not float64 values, shape (n,).
 
     Raises 422 for nulls, booleans, text that is not a number, and non-numeric types.
     Non-finite values are returned; the caller reports them with the other values.
+    ``out`` (n,) float64, if given, receives the values (a buffer reused across columns
+    saves allocating fresh memory per column); it is also what is returned.
     """
     col = plain_chunks(column)
     t = col.type
@@ -435,7 +440,10 @@ def floats_from_arrow(
         )
     if pa.types.is_null(t) or col.null_count:
         raise _null_error(field, col, locate, "values")
-    out = np.empty(n, dtype=np.float64)
+    if out is None:
+        out = np.empty(n, dtype=np.float64)
+    elif out.shape != (n,) or out.dtype != np.float64:
+        raise ValueError(f"out must be float64 of shape ({n},), got {out.dtype} {out.shape}")
     if pa.types.is_floating(t) or pa.types.is_integer(t) or pa.types.is_decimal(t):
         pos = 0
         for chunk in col.chunks:

@@ -36,6 +36,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from numpy.typing import NDArray
 
+from ._convert import _string_buffers, text_to_numpy
 from .errors import MAX_EXAMPLES, IngestError, content_error, show_text
 
 _HASH_SEED = 0x1D5_EED_2026
@@ -169,6 +170,19 @@ def _sorted_keys(units: NDArray[Any], bits: int) -> NDArray[np.uint64]:
     return np.sort((_row_hash(units) & ~low) | np.arange(n, dtype=np.uint64))
 
 
+def _holdout_sorted_keys(
+    hu: NDArray[Any], bits: int, owner: NDArray[Any] | None
+) -> tuple[NDArray[np.uint64], bool]:
+    """The holdout's sorted keys, from the cache when ``owner`` is known; (keys, cached)."""
+    kh = _holdout_keys.get(owner) if owner is not None else None
+    if kh is not None:
+        return kh, True
+    kh = _sorted_keys(hu, bits)
+    if owner is not None:
+        _holdout_keys.put(owner, kh)
+    return kh, False
+
+
 def _fast_order(
     h: NDArray[np.str_], s: NDArray[np.str_], owner: NDArray[Any] | None = None
 ) -> NDArray[np.intp] | None:
@@ -192,26 +206,128 @@ def _fast_order(
     if np.array_equal(hu[:head], su[:head]) and np.array_equal(hu, su):
         return np.arange(n, dtype=np.intp)  # already in holdout order (a common case)
     bits = max(1, (n - 1).bit_length())
-    low = np.uint64((1 << bits) - 1)
-    high = ~low
-    kh = _holdout_keys.get(owner) if owner is not None else None
-    cached = kh is not None
-    if kh is None:
-        kh = _sorted_keys(hu, bits)
-        if owner is not None:
-            _holdout_keys.put(owner, kh)
-    order = _pair_and_verify(h, s, hu, su, kh, _sorted_keys(su, bits), low, high)
+    kh, cached = _holdout_sorted_keys(hu, bits, owner)
+
+    def same_rows(order: NDArray[np.intp], rows: NDArray[np.intp] | None) -> NDArray[np.intp]:
+        return _same_rows(hu, su, order, rows)
+
+    order = _pair_and_verify(h, kh, _sorted_keys(su, bits), bits, same_rows,
+                             lambda rows: s[rows].tolist())
     if order is None and cached:
         _holdout_keys.drop(owner)  # the cached keys may be stale: decide on fresh ones
         return _fast_order(h, s, owner)
     return order
 
 
-def _pair_and_verify(
-    h: NDArray[np.str_], s: NDArray[np.str_], hu: NDArray[Any], su: NDArray[Any],
-    kh: NDArray[np.uint64], ks: NDArray[np.uint64], low: np.uint64, high: np.uint64,
+def _byte_multipliers(h: NDArray[np.str_], length: int) -> NDArray[np.uint64]:
+    """Multipliers that hash an ASCII byte row exactly as ``_row_hash`` hashes its text in
+    ``h``'s layout: a word of two UTF-32 units (a, b) is a + b * 2**32, so its multiplier r
+    becomes r for byte a and r * 2**32 for byte b (mod 2**64)."""
+    width = h.dtype.itemsize // 4
+    if h.dtype.itemsize % 8:
+        return _multipliers(width)[:length]
+    r = _multipliers(width // 2)
+    out = np.empty(2 * r.size, dtype=np.uint64)
+    out[0::2] = r
+    out[1::2] = r << np.uint64(32)
+    return out[:length]
+
+
+def _byte_row_hash(rows: NDArray[np.uint8], multipliers: NDArray[np.uint64]) -> NDArray[np.uint64]:
+    """``_row_hash`` of ASCII text given as (n, L) bytes, in cache-sized chunks (einsum
+    widens each chunk's bytes to uint64 on the fly; no (n, L) uint64 copy is made)."""
+    n = rows.shape[0]
+    out = np.empty(n, dtype=np.uint64)
+    for start in range(0, n, _CHUNK_ROWS):
+        stop = min(n, start + _CHUNK_ROWS)
+        out[start:stop] = np.einsum("ij,j->i", rows[start:stop], multipliers)
+    return out
+
+
+def _ascii_rows(arr: pa.Array) -> NDArray[np.uint8] | None:
+    """An ASCII, NUL-free Arrow string array as an (n, L) byte matrix padded with NUL to its
+    longest entry (a zero-copy view when every entry has L bytes); None for other text."""
+    offsets, data = _string_buffers(arr)
+    if data.size == 0 or int(data.max()) >= 128 or not data.all():
+        return None
+    lengths = np.diff(offsets)
+    longest = int(lengths.max())
+    if (lengths == longest).all():
+        return data.reshape(lengths.size, longest)
+    rows = np.zeros((lengths.size, longest), dtype=np.uint8)
+    rows[np.arange(longest) < lengths[:, None]] = data
+    return rows
+
+
+def _fast_order_ascii(
+    h: NDArray[np.str_], arr: pa.Array, owner: NDArray[Any] | None = None
 ) -> NDArray[np.intp] | None:
+    """``_fast_order`` for submitted ids still in Arrow form, when they are ASCII.
+
+    The ids are hashed and compared as UTF-8 bytes, (n, L) with L their longest, never
+    widened to numpy's UTF-32 (four times the memory): equal text hashes equally in
+    either form, so the holdout's keys (cached) pair with them unchanged.
+    """
     n = h.size
+    if len(arr) != n or n == 0 or arr.null_count:
+        return None
+    sb = _ascii_rows(arr)
+    if sb is None:
+        return None
+    length = sb.shape[1]
+    width = h.dtype.itemsize // 4
+    if length > width:
+        return None  # some submitted id is longer than every holdout id
+    h32 = h.view(np.uint32).reshape(n, width)
+    bits = max(1, (n - 1).bit_length())
+    keys = _byte_row_hash(sb, _byte_multipliers(h, length))
+    low = np.uint64((1 << bits) - 1)
+    keys &= ~low
+    keys |= np.arange(n, dtype=np.uint64)
+    keys.sort()
+    kh, cached = _holdout_sorted_keys(_code_units(h), bits, owner)
+
+    def same_rows(order: NDArray[np.intp], rows: NDArray[np.intp] | None) -> NDArray[np.intp]:
+        chunks = [rows] if rows is not None else [
+            np.arange(start, min(n, start + _CHUNK_ROWS)) for start in range(0, n, _CHUNK_ROWS)
+        ]
+        bad: list[NDArray[np.intp]] = []
+        for pos in chunks:  # chunks stay in cache
+            got = np.take(sb, order[pos], axis=0)
+            want = h32[pos[0] : pos[-1] + 1] if rows is None else h32[pos]
+            ok = (got == want[:, :length]).all(axis=1)
+            if length < width:
+                ok &= ~want[:, length:].any(axis=1)
+            if not ok.all():
+                bad.append(pos[~ok])
+        return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)
+
+    def texts(rows: NDArray[np.intp]) -> list[str]:
+        return arr.take(pa.array(rows, type=pa.int64())).to_pylist()
+
+    order = _pair_and_verify(h, kh, keys, bits, same_rows, texts)
+    if order is None and cached:
+        _holdout_keys.drop(owner)
+        return _fast_order_ascii(h, arr, owner)
+    return order
+
+
+def _pair_and_verify(
+    h: NDArray[np.str_],
+    kh: NDArray[np.uint64],
+    ks: NDArray[np.uint64],
+    bits: int,
+    same_rows: Any,
+    submitted_text: Any,
+) -> NDArray[np.intp] | None:
+    """Pair the sorted keys position by position and verify every pairing exactly.
+
+    ``same_rows(order, rows)`` gives the holdout positions whose paired submitted id differs
+    (among ``rows``, or all); ``submitted_text(rows)`` the submitted ids at those rows.
+    """
+    n = h.size
+    low = np.uint64((1 << bits) - 1)
+    high = ~low
     ph = kh & high
     if not np.array_equal(ph, ks & high):
         return None
@@ -225,7 +341,7 @@ def _pair_and_verify(
         group = np.unique(np.concatenate([hpos[tied], hpos[tied + 1]]))
         if len(set(h[group].tolist())) < group.size:
             raise ValueError("holdout ids are not unique")
-    bad = _same_rows(hu, su, order)
+    bad = same_rows(order, None)
     if bad.size == 0:
         return order
     if bad.size > _REPAIR_LIMIT:
@@ -233,7 +349,7 @@ def _pair_and_verify(
     # Re-pair the rows a hash collision mixed up, by exact lookup among the same rows.
     candidates = order[bad]
     lookup: dict[str, int] = {}
-    for i, text in zip(candidates.tolist(), s[candidates].tolist(), strict=True):
+    for i, text in zip(candidates.tolist(), submitted_text(candidates), strict=True):
         if text in lookup:
             return None
         lookup[text] = i
@@ -242,7 +358,7 @@ def _pair_and_verify(
         if i is None:
             return None
         order[j] = i
-    if _same_rows(hu, su, order, bad).size:
+    if same_rows(order, bad).size:
         return None
     return order
 
@@ -427,8 +543,9 @@ def align_ids(
     ----------
     holdout_ids : array of str, shape (n,)
         The holdout's ids, unique (a ValueError otherwise: that is our bug, not the user's).
-    submitted_ids : array of str, shape (m,)
-        The submission's ids as sent (``id_array`` or a table reader's ``ids``).
+    submitted_ids : array of str, shape (m,), or a pyarrow string array
+        The submission's ids as sent (``id_array`` or a table reader's ``ids``). An Arrow
+        array of ASCII ids is aligned from its UTF-8 bytes, without a numpy copy.
     field : str
         Name of the submitted field, for messages.
 
@@ -445,6 +562,16 @@ def align_ids(
         public. Ids match exactly (no Unicode normalization, no trimming).
     """
     h = _as_1d(holdout_ids, "holdout_ids")
+    if isinstance(submitted_ids, pa.ChunkedArray):
+        submitted_ids = submitted_ids.combine_chunks()
+    if isinstance(submitted_ids, pa.Array) and pa.types.is_string(submitted_ids.type):
+        hu_fast = _as_unicode(h)
+        if hu_fast is not None:
+            order = _fast_order_ascii(hu_fast, submitted_ids, owner=h if hu_fast is h else None)
+            if order is not None:
+                return order
+        submitted_ids = text_to_numpy(submitted_ids) if not submitted_ids.null_count else \
+            submitted_ids
     s = _as_1d(submitted_ids, "submitted_ids")
     hu = _as_unicode(h)
     su = _as_unicode(s) if hu is not None else None

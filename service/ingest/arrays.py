@@ -113,9 +113,13 @@ def _seed_lists(
             hint=f"send either one list of {item} (one seed) or only lists (one per seed)",
         )
     if len(outer) > limits.max_seeds:
-        raise whole_field_error(
-            field, f"has {len(outer)} seeds, more than the limit of {limits.max_seeds}",
+        past = range(limits.max_seeds, min(len(outer), limits.max_seeds + MAX_EXAMPLES))
+        raise IngestError(
+            422, field,
+            f"{field}: has {len(outer)} seeds, more than the limit of {limits.max_seeds}; "
+            f"send at most {limits.max_seeds} prediction sets",
             count=len(outer),
+            examples=[f"{field}[{i}] = {show_value(outer[i])}" for i in past],
         )
     return outer, True, None
 

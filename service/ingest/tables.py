@@ -47,7 +47,7 @@ from ._convert import (
     text_from_arrow,
     text_to_numpy,
 )
-from .align import require_unique_ids
+from .align import align_ids, require_unique_ids
 from .arrays import check_probabilities, check_task, class_array, unknown_labels_error
 from .errors import MAX_EXAMPLES, IngestError, content_error, show_text, show_value
 from .limits import DEFAULT_LIMITS, Limits
@@ -65,7 +65,8 @@ _HEADER_BLOCK = 1 << 20
 
 @dataclass(frozen=True)
 class SubmissionArrays:
-    """A submission in the order it was sent (align with ``align_ids`` before scoring).
+    """A submission in the order it was sent (align with ``align_ids`` before scoring), or
+    in the holdout's order when ``submission_from_table`` was given the holdout's ids.
 
     ``ids`` (n,); ``predictions`` (K, n) for regression; ``labels`` (K, n) class indices and
     ``probabilities`` (K, n, C) for classification, each None when not sent; ``seeds`` the
@@ -420,12 +421,24 @@ def _layout(names: Sequence[str], task: str, classes: Sequence[str] | None) -> _
 
 
 def submission_from_table(
-    table: pa.Table, *, task: str, classes: Sequence[str] | None, limits: Limits
+    table: pa.Table,
+    *,
+    task: str,
+    classes: Sequence[str] | None,
+    limits: Limits,
+    holdout_ids: NDArray[Any] | None = None,
 ) -> SubmissionArrays:
-    """A submission table (module docstring layout) as arrays in the order sent.
+    """A submission table (module docstring layout) as arrays, in the order sent or aligned.
 
     ``classes`` are the holdout's classes (canonical text, in the order probabilities are
     returned); required for classification, ignored for regression.
+
+    With ``holdout_ids`` (n,), the ids are aligned to them (``align_ids``) before any value
+    column is converted, and every array comes back in holdout order (``ids`` is then
+    ``holdout_ids``): each column is gathered once into its row of the result, so no
+    (K, n) array is copied afterwards, and the submitted ids' numpy form is released as
+    soon as they are aligned. Problems with the ids are reported together with problems
+    in the value columns (ids first); rows in messages are always the submitted rows.
     """
     check_task(task)
     if task == "classification" and classes is None:
@@ -438,26 +451,48 @@ def submission_from_table(
     layout = _layout(names, task, classes)
     k = len(layout.seeds)
     if k > limits.max_seeds:
+        past = layout.seeds[limits.max_seeds:limits.max_seeds + MAX_EXAMPLES]
         raise IngestError(
-            422, "columns", f"columns: {k} seeds, more than the limit of {limits.max_seeds}",
+            422, "columns", f"columns: {k} seeds, more than the limit of {limits.max_seeds}; "
+            f"send at most {limits.max_seeds} seeds",
             count=k,
+            examples=[show_text(layout.pred.get(s) or layout.prob[s][0]) for s in past],
         )
-    ids = _ids(table, ID_COLUMN, limits)
+    id_text = text_from_arrow(table.column(ID_COLUMN), ID_COLUMN, _row, limits, labels=False,
+                              noun="ids")
     n = table.num_rows
     problems: list[IngestError] = []
+    order: NDArray[np.intp] | None = None
+    ids: NDArray[Any]
+    if holdout_ids is None:
+        ids = text_to_numpy(id_text)
+    else:
+        ids = holdout_ids
+        try:
+            # Arrow text: ASCII ids are aligned from their bytes, with no numpy copy.
+            order = align_ids(holdout_ids, id_text, field=ID_COLUMN)
+        except IngestError as exc:
+            problems.append(exc)  # values are still checked, in the order sent
+    del id_text
+    # Values are converted into `scratch` (the order sent), checked, then gathered into
+    # their row of the result; without an order they are converted in place.
+    scratch = np.empty(n, dtype=np.float64) if order is not None else None
     predictions = labels = probabilities = None
     if task == "regression":
         predictions = np.empty((k, n), dtype=np.float64)
         for s, seed in enumerate(layout.seeds):
             column = layout.pred[seed]
+            target = predictions[s] if scratch is None else scratch
             try:
-                predictions[s] = floats_from_arrow(table.column(column), column, _row)
+                values = floats_from_arrow(table.column(column), column, _row, out=target)
             except IngestError as exc:
                 problems.append(exc)
                 continue
-            err = nonfinite_error(column, predictions[s], _row)
+            err = nonfinite_error(column, values, _row)
             if err is not None:
                 problems.append(err)
+            elif order is not None:
+                np.take(values, order, out=predictions[s])
         raise_first(problems)
         return SubmissionArrays(ids, predictions, None, None, list(layout.seeds))
     assert class_arr is not None and classes is not None
@@ -479,7 +514,11 @@ def submission_from_table(
                 tally.add(pos, lambda i, c=original: f"{_row(i)} = {show_value(c[i].as_py())}")
                 problems.append(unknown_labels_error(column, tally))
                 continue
-            labels[s] = idx.to_numpy(zero_copy_only=False)
+            sent = idx.to_numpy(zero_copy_only=False)
+            if order is None:
+                labels[s] = sent
+            else:
+                labels[s] = sent[order]
     if layout.prob:
         c = len(classes)
         probabilities = np.empty((k, n, c), dtype=np.float64)
@@ -504,4 +543,6 @@ def submission_from_table(
             except IngestError as exc:
                 problems.append(exc)
     raise_first(problems)
+    if probabilities is not None and order is not None:
+        probabilities = np.take(probabilities, order, axis=1)
     return SubmissionArrays(ids, None, labels, probabilities, list(layout.seeds))

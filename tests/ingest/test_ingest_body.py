@@ -33,7 +33,7 @@ def test_several_gzip_members_are_one_body():
     assert decode_body(raw, "gzip", limits=LIMITS) == gzip.decompress(raw)
 
 
-@pytest.mark.parametrize("raw", [b"", gzip.compress(b"")])
+@pytest.mark.parametrize("raw", [b"", gzip.compress(b"", mtime=0)])
 def test_empty_body_is_400(raw):
     encoding = "gzip" if raw else None
     err = pytest.raises(IngestError, decode_body, raw, encoding, limits=LIMITS).value
