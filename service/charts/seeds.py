@@ -109,7 +109,7 @@ def seed_spread_chart(
     higher = metric_direction(metric, higher_is_better)
     mean = math.fsum(v for _, v in drawn) / len(drawn)
 
-    level_text = f"{level:.0%} interval" if level is not None else "interval"
+    level_text = f"{100.0 * level:.4g}% interval" if level is not None else "interval"
     table: list[dict[str, Any]] = [
         {"series": "seed", "label": labels[k], "value": v} for k, v in enumerate(values)
     ]
@@ -124,8 +124,9 @@ def seed_spread_chart(
     listed = ", ".join(f"seed {labels[k]}: {format_number(v)}" for k, v in drawn)
     missing = [labels[k] for k, v in enumerate(values) if v is None]
     alt = [
-        f"Dot strip of {metric} ({direction_text(higher)}) for each of {len(values)} seeds: "
-        f"{listed}."
+        f"Dot strip of {metric} ({direction_text(higher)}) "
+        + (f"for each of {len(values)} seeds: " if len(values) > 1 else "for one seed: ")
+        + f"{listed}."
     ]
     if missing:
         alt.append(f"Undefined for seed {', '.join(missing)}.")
@@ -137,7 +138,7 @@ def seed_spread_chart(
             f"{level_text[0].upper()}{level_text[1:]} ({method}) from {format_number(low)} "
             f"to {format_number(high)}."
         )
-    elif interval is not None:
+    else:
         alt.append(f"No interval{': ' + note_text if note_text else ''}.")
     if ensemble is not None:
         alt.append(f"The seeds' combined (ensemble) prediction scores {format_number(ensemble)}.")
@@ -228,11 +229,12 @@ def seed_spread_chart(
                 fontsize=style.VALUE_SIZE,
                 parse_math=False,
             )
-        elif interval is not None:
+        else:
+            reason = note_text or (method if method not in ("", "none") else "")
             axes.text(
                 (xlo + xhi) / 2.0,
                 _ROW_INTERVAL,
-                fit(canvas, f"no interval: {note_text or method}", narrow_width=30),
+                fit(canvas, f"no interval{': ' + reason if reason else ''}", narrow_width=30),
                 ha="center",
                 va="center",
                 fontsize=style.NOTE_SIZE,
