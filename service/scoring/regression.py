@@ -267,6 +267,7 @@ def _fused_pass(
     s_sq = np.zeros(n_rows)
     s_abs = np.zeros(n_rows)
     s_pct = np.zeros(n_rows)
+    block_sums = np.empty((3, n_rows))  # the block's sums of |r|, |r| / |y| and r^2
     m_abs = np.full(n_rows, -np.inf if w is None else 0.0)
     rows_sq = _aligned_empty(n) if row_loss else None
     row_moments = None
@@ -274,7 +275,6 @@ def _fused_pass(
         assert ensemble and row_loss
         ratios = n >= 2 and ts.r2_denominator != 0.0
         row_moments = _RowMoments(ts, n_seeds, step, ratios)
-        abs_sum = _aligned_empty(step)
 
     half = n // 2
     median_ranks = (half - 1, half) if n % 2 == 0 else (half,)
@@ -308,17 +308,16 @@ def _fused_pass(
             row_moments.start_block(sl, a[n_seeds], float(inc_r[n_seeds]))
         np.abs(a, out=a)  # a = |r| from here
         if w is None:
-            inc_abs = np.einsum("kc->k", a)
+            inc_abs = np.einsum("kc->k", a, out=block_sums[0])
             np.maximum(m_abs, np.maximum.reduce(a, axis=1), out=m_abs)
         else:
-            inc_abs = np.einsum("kc,c->k", a, w[sl])
+            inc_abs = np.einsum("kc,c->k", a, w[sl], out=block_sums[0])
             np.maximum(m_abs, np.max(a, axis=1, where=ts.positive[sl], initial=0.0), out=m_abs)
         s_abs += inc_abs
         inv = ts.inverse_scale(sl, scale[: stop - start], weighted=True)
-        inc_pct = np.einsum("kc,c->k", a, inv)
-        s_pct += inc_pct
+        s_pct += np.einsum("kc,c->k", a, inv, out=block_sums[1])
         if row_moments is not None:
-            abs_block = np.add.reduce(a[:n_seeds], axis=0, out=abs_sum[: stop - start])
+            np.add.reduce(a[:n_seeds], axis=0, out=row_moments.abs_sum(stop - start))
         if selector is not None:
             selector.add_block(a)
         np.multiply(a, a, out=a)  # a = r^2 from here (|r|^2 is r^2 to the bit)
@@ -327,20 +326,14 @@ def _fused_pass(
             rows_sq[sl] /= n_seeds
         if w is not None:
             a *= w[sl]
-        inc_sq = np.add.reduce(a, axis=1)  # pairwise: see squared_relative_error
-        s_sq += inc_sq
+        s_sq += np.add.reduce(a, axis=1, out=block_sums[2])  # pairwise: squared_relative_error
         if row_moments is not None:
             assert rows_sq is not None
             row_moments.end_block(
                 sl,
                 rows_sq[sl],
-                abs_block,
                 inv if w is None else None,
-                (
-                    float(inc_sq[:n_seeds].sum()) / n_seeds,
-                    float(inc_abs[:n_seeds].sum()) / n_seeds,
-                    float(inc_pct[:n_seeds].sum()) / n_seeds,
-                ),
+                np.add.reduce(block_sums[:, :n_seeds], axis=1),
             )
 
     if not np.isfinite(s_sq).all():
@@ -386,9 +379,11 @@ def _fused_pass(
     )
 
 
-_PAIRS = ("uu", "vv", "qq", "bb", "ub", "ee", "ue", "eb")
-"""Co-moments ``_RowMoments`` keeps: u row loss, v mean |r|, q MAPE term, b (y - mean)^2,
-e the ensemble's residual (the last five only for the r2 and explained variance intervals)."""
+_PAIRS = ("vv", "qq", "uu", "ee", "bb", "ub", "eb", "ue")
+"""Co-moments ``_RowMoments`` keeps, in the order it computes them (``vv`` to ``bb``: the
+squares of its buffer's rows v, q, u, e, b; then the cross products). v mean |r| over seeds,
+q the MAPE term, u the row loss, e the ensemble's residual, b (y - mean)^2; e and b only
+for the r2 and explained variance intervals."""
 
 
 class _RowMoments:
@@ -403,20 +398,25 @@ class _RowMoments:
     exactly by the pairwise formula of Chan, Golub & LeVeque (1979, "Updating formulae and a
     pairwise algorithm for computing sample variances"):
     C_xy = sum_j C_xy,j + sum_j W_j (xbar_j - xbar)(ybar_j - ybar).
-    The pass calls ``start_block`` while the block still holds r (for e), ``end_block``
-    once it has the rest.
+
+    The centred values are written to the rows of one (5, step) buffer, so that three
+    einsum calls give all eight products (2-d einsums cost less per product than 1-d ones).
+    The pass calls ``start_block`` while the block still holds r (for e), writes the sum of
+    |r| over seeds to ``abs_sum(m)``, then calls ``end_block``.
     """
 
     def __init__(self, ts: _TargetStats, n_seeds: int, step: int, ratios: bool) -> None:
         self.ts = ts
         self.n_seeds = n_seeds
-        self.ratios = ratios  # also b and e (the r2 and explained variance intervals)
-        self.du, self.dq, self.db, self.de, self.scratch = (
-            _aligned_empty(step) for _ in range(5)
+        self.ratios = ratios  # also e and b (the r2 and explained variance intervals)
+        self.rows = 5 if ratios else 3
+        self.centred = _aligned_empty(5 * step).reshape(5, step)  # v, q, u, e, b
+        self.weighted = (
+            None if ts.weights is None else _aligned_empty(5 * step).reshape(5, step)
         )
         self.block_weights: list[float] = []
-        self.block_means: list[tuple[float, float, float, float, float]] = []  # u v q b e
-        self.sums = [0.0] * len(_PAIRS)
+        self.block_means: list[tuple[float, ...]] = []  # K v, K q, K u, e, b per block
+        self.sums = np.zeros(len(_PAIRS))
         self.weight = 0.0  # of the current block
         self.mean_e = 0.0
 
@@ -427,76 +427,68 @@ class _RowMoments:
         self.weight = float(m) if w is None else float(np.einsum("i->", w[rows]))
         if self.ratios and self.weight > 0.0:
             self.mean_e = sum_e / self.weight
-            np.subtract(residual, self.mean_e, out=self.de[:m])
+            np.subtract(residual, self.mean_e, out=self.centred[3, :m])
+
+    def abs_sum(self, m: int) -> NDArray[np.float64]:
+        """Where the pass writes the block's sum over seeds of |r| (K v)."""
+        return self.centred[0, :m]
 
     def end_block(
         self,
         rows: slice,
         row_loss: NDArray[np.float64],
-        abs_sum: NDArray[np.float64],
         inverse_scale: NDArray[np.float64] | None,
-        sums: tuple[float, float, float],
+        sums: NDArray[np.float64],
     ) -> None:
-        """The block's row losses u, ``abs_sum`` = K v (overwritten), 1 / max(|y|, eps)
-        (None: formed here) and the block's weighted sums of u, v and q from the pass."""
+        """The block's row losses u, 1 / max(|y|, eps) (None: formed here) and its weighted
+        sums of K v, K q and K u from the pass; K v is in ``abs_sum(m)`` already."""
         weight = self.weight
         if not weight > 0.0:  # every weight of the block is zero: it adds nothing
             return
-        ts, k = self.ts, float(self.n_seeds)
-        wb = None if ts.weights is None else ts.weights[rows]
+        ts = self.ts
         m = row_loss.size
-        du, dq, scratch = self.du[:m], self.dq[:m], self.scratch[:m]
-        mean_u, mean_v, mean_q = (s / weight for s in sums)
-        np.subtract(row_loss, mean_u, out=du)
+        c = self.centred[:, :m]
+        means = sums / weight  # K v, K q, K u
         if inverse_scale is None:
-            inverse_scale = ts.inverse_scale(rows, scratch)
-        # K v and K q, centred: the 1 / K is applied to their sums in ``finish``
-        np.multiply(abs_sum, inverse_scale, out=dq)
-        dq -= k * mean_q
-        dv = np.subtract(abs_sum, k * mean_v, out=abs_sum)
-        sums_ = self.sums
-        if wb is None:
-            sums_[0] += float(np.einsum("i,i->", du, du))
-            sums_[1] += float(np.einsum("i,i->", dv, dv))
-            sums_[2] += float(np.einsum("i,i->", dq, dq))
-        else:
-            sums_[0] += float(np.einsum("i,i,i->", du, du, wb))
-            sums_[1] += float(np.einsum("i,i,i->", dv, dv, wb))
-            sums_[2] += float(np.einsum("i,i,i->", dq, dq, wb))
+            inverse_scale = ts.inverse_scale(rows, c[2])
+        np.multiply(c[0], inverse_scale, out=c[1])  # K q = K v / max(|y|, eps)
+        c[:2] -= means[:2, np.newaxis]  # centred K v, K q: 1 / K^2 applied in ``finish``
+        np.subtract(row_loss, means[2] / self.n_seeds, out=c[2])
         mean_b = 0.0
+        wb = None if ts.weights is None else ts.weights[rows]
         if self.ratios:
-            db, de = self.db[:m], self.de[:m]
-            b = ts.centred_sq(rows, db)
-            sum_b = np.einsum("i->", b) if wb is None else np.einsum("i,i->", b, wb)
-            mean_b = float(sum_b) / weight
-            db -= mean_b
-            if wb is not None:  # weight one factor of the remaining products
-                np.multiply(du, wb, out=du)
-                np.multiply(de, wb, out=scratch)
-                np.multiply(db, wb, out=dq)
-                wdb, wde = dq, scratch
-            else:
-                wdb, wde = db, de
-            sums_[3] += float(np.einsum("i,i->", wdb, db))
-            sums_[4] += float(np.einsum("i,i->", du, db))
-            sums_[5] += float(np.einsum("i,i->", wde, de))
-            sums_[6] += float(np.einsum("i,i->", du, de))
-            sums_[7] += float(np.einsum("i,i->", wde, db))
+            b = np.subtract(ts.y[rows], ts.mean, out=c[4])
+            np.multiply(b, b, out=b)  # (y - mean y)^2
+            mean_b = float(np.einsum("i->", b) if wb is None else np.einsum("i,i->", b, wb))
+            mean_b /= weight
+            b -= mean_b
+        used = c[: self.rows]
+        weighted = used
+        if wb is not None:
+            assert self.weighted is not None
+            weighted = np.multiply(used, wb, out=self.weighted[: self.rows, :m])
+        sums_ = self.sums
+        sums_[: self.rows] += np.einsum("km,km->k", weighted, used)
+        if self.ratios:
+            sums_[5:7] += np.einsum("km,m->k", weighted[2:4], c[4])  # ub, eb
+            sums_[7] += np.einsum("m,m->", weighted[2], c[3])  # ue
         self.block_weights.append(weight)
-        self.block_means.append((mean_u, mean_v, mean_q, mean_b, self.mean_e))
+        self.block_means.append((means[0], means[1], means[2], self.mean_e, mean_b))
 
     def finish(self) -> dict[str, float]:
         """The co-moments about the overall weighted means: sum_i w_i (x_i - xbar)(y_i - ybar)."""
         weights = np.array(self.block_weights)
         means = np.array(self.block_means).reshape(-1, 5)
+        k = float(self.n_seeds)
+        means[:, :3] /= k  # the block means of K v, K q and K u
         total = float(weights.sum())
         centred = means - (weights @ means) / total if total > 0 else means * 0.0
-        index = {"u": 0, "v": 1, "q": 2, "b": 3, "e": 4}
-        scale = {"vv": 1.0 / self.n_seeds**2, "qq": 1.0 / self.n_seeds**2}
+        index = {"v": 0, "q": 1, "u": 2, "e": 3, "b": 4}
+        scale = {"vv": 1.0 / k**2, "qq": 1.0 / k**2}  # their centred values were K v, K q
         out = {}
         for j, name in enumerate(_PAIRS):
             x, y = centred[:, index[name[0]]], centred[:, index[name[1]]]
-            within = self.sums[j] * scale.get(name, 1.0)
+            within = float(self.sums[j]) * scale.get(name, 1.0)
             out[name] = within + float(np.einsum("j,j,j->", weights, x, y))
         return out
 

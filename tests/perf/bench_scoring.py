@@ -278,7 +278,8 @@ _PHASES = [
     ("metrics", "regression._metrics_from_pass"),
     ("decomposition", "regression._decomposition"),
     ("flags", "flags.overfitting_flags"),
-    ("interval_moments", "regression._RowMoments.add_block"),
+    ("interval_moments", "regression._RowMoments.start_block"),
+    ("interval_moments", "regression._RowMoments.end_block"),
     ("interval_moments", "regression._RowMoments.finish"),
     ("intervals", "regression._intervals"),
 ]
