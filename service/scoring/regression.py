@@ -158,6 +158,8 @@ class _TargetStats:
     ev_denominator: float  # weighted mean of (y - mean)^2, as in explained_variance_score
     positive: NDArray[np.bool_] | None  # rows of positive weight (weights only)
     zero_targets: int
+    block_rows: int | None = None  # the blocks of ``block_centred_sq``
+    block_centred_sq: list[float] | None = None  # per block: sum w (y - mean)^2
 
     def centred_sq(self, rows: slice, out: NDArray[np.float64]) -> NDArray[np.float64]:
         """(y - mean)^2 on ``rows``, written to ``out`` (of the rows' length)."""
@@ -175,13 +177,18 @@ class _TargetStats:
         return np.divide(1.0, out, out=out)
 
 
-def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _TargetStats:
+def _target_stats(
+    y: NDArray[np.float64], w: NDArray[np.float64] | None, block_rows: int | None = None
+) -> _TargetStats:
+    """Summarize the targets; with ``block_rows`` (the fused pass's block length) also keep
+    each block's sum of w (y - mean)^2, which the interval co-moments use."""
     mean = float(np.average(y, weights=w))
     n = y.size
-    step = min(n, _TARGET_BLOCK)
+    step = min(n, block_rows or _TARGET_BLOCK)
     buf = _aligned_empty(step)
     r2_den = 0.0
     zero_targets = 0
+    block_sums = []
     for start in range(0, n, step):
         stop = min(start + step, n)
         sl = slice(start, stop)
@@ -189,10 +196,12 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
         zero_targets += int(np.count_nonzero(y[sl] == 0.0))
         np.subtract(y[sl], mean, out=t)
         if w is None:
-            r2_den += float(np.einsum("i,i->", t, t))
+            block = float(np.einsum("i,i->", t, t))
         else:
             np.multiply(t, t, out=t)
-            r2_den += float(np.einsum("i,i->", t, w[sl]))
+            block = float(np.einsum("i,i->", t, w[sl]))
+        r2_den += block
+        block_sums.append(block)
     weight_sum = float(n) if w is None else float(w.sum())
     return _TargetStats(
         y=y,
@@ -203,6 +212,8 @@ def _target_stats(y: NDArray[np.float64], w: NDArray[np.float64] | None) -> _Tar
         ev_denominator=r2_den / weight_sum,
         positive=None if w is None else w > 0,
         zero_targets=zero_targets,
+        block_rows=step if block_rows else None,
+        block_centred_sq=block_sums if block_rows else None,
     )
 
 
@@ -222,6 +233,12 @@ class _PassResult:
     row_loss: NDArray[np.float64] | None  # (n,) mean over the K seeds of r^2
     moments: dict[str, float] | None  # co-moments of the per-row values (``_RowMoments``)
     squared_relative_error: float  # bound on the relative rounding error of sum_squared
+
+
+def _pass_step(n: int, n_rows: int) -> int:
+    """Rows per block of the fused pass over ``n_rows`` prediction rows of n values."""
+    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_rows))
+    return min(n, -(-step // 8) * 8)  # whole cache lines per row of a block
 
 
 def _fused_pass(
@@ -259,8 +276,7 @@ def _fused_pass(
     y, w = ts.y, ts.weights
     n_seeds, n = predictions.shape
     n_rows = n_seeds + int(ensemble)
-    step = min(n, max(_MIN_BLOCK_ROWS, _BLOCK_VALUES // n_rows))
-    step = min(n, -(-step // 8) * 8)  # whole cache lines per row of a block
+    step = _pass_step(n, n_rows)
     storage = _aligned_empty(n_rows * step)
     scale = _aligned_empty(step)  # the block's (weighted) inverse scale for MAPE
     s_r = np.zeros(n_rows)
@@ -393,7 +409,8 @@ class _RowMoments:
     Per row i, with weight w_i: u = mean over seeds of r^2 (the row loss), v = mean over
     seeds of |r|, q = v / max(|y|, eps), b = (y - mean y)^2 and e = the ensemble's residual.
     Within a block the values are centred at the block's own weighted means, which the
-    pass's per-block sums give for free (b's takes one sum), and their products summed: the
+    pass's per-block sums give for free (b's comes from ``_target_stats`` summarizing the
+    targets in the same blocks), and their products summed: the
     accuracy of the two-pass formula, with no E[x^2] - E[x]^2 cancellation. Blocks combine
     exactly by the pairwise formula of Chan, Golub & LeVeque (1979, "Updating formulae and a
     pairwise algorithm for computing sample variances"):
@@ -405,29 +422,38 @@ class _RowMoments:
     |r| over seeds to ``abs_sum(m)``, then calls ``end_block``.
     """
 
-    def __init__(self, ts: _TargetStats, n_seeds: int, step: int, ratios: bool) -> None:
+    def __init__(
+        self, ts: _TargetStats, n_seeds: int, step: int, ratios: bool
+    ) -> None:
+        if ratios and (ts.block_rows != step or ts.block_centred_sq is None):
+            raise ValueError("the targets must be summarized in the pass's blocks")
         self.ts = ts
         self.n_seeds = n_seeds
         self.ratios = ratios  # also e and b (the r2 and explained variance intervals)
+        self.step = step
         self.rows = 5 if ratios else 3
         self.centred = _aligned_empty(5 * step).reshape(5, step)  # v, q, u, e, b
         self.weighted = (
             None if ts.weights is None else _aligned_empty(5 * step).reshape(5, step)
         )
-        self.block_weights: list[float] = []
-        self.block_means: list[tuple[float, ...]] = []  # K v, K q, K u, e, b per block
-        self.sums = np.zeros(len(_PAIRS))
-        self.weight = 0.0  # of the current block
-        self.mean_e = 0.0
+        n_blocks = -(-ts.y.size // step)
+        # per block: its weight, means (K v, K q, K u, e, b) and products (``_PAIRS``),
+        # summed pairwise at the end
+        self.block_weights = np.zeros(n_blocks)
+        self.block_means = np.zeros((n_blocks, 5))
+        self.products = np.zeros((n_blocks, len(_PAIRS)))
 
     def start_block(self, rows: slice, residual: NDArray[np.float64], sum_e: float) -> None:
         """The block's ensemble residuals e (before the pass overwrites them) and sum w e."""
         w = self.ts.weights
         m = residual.size
-        self.weight = float(m) if w is None else float(np.einsum("i->", w[rows]))
-        if self.ratios and self.weight > 0.0:
-            self.mean_e = sum_e / self.weight
-            np.subtract(residual, self.mean_e, out=self.centred[3, :m])
+        j = rows.start // self.step
+        weight = float(m) if w is None else float(np.einsum("i->", w[rows]))
+        self.block_weights[j] = weight
+        if self.ratios and weight > 0.0:
+            mean_e = sum_e / weight
+            self.block_means[j, 3] = mean_e
+            np.subtract(residual, mean_e, out=self.centred[3, :m])
 
     def abs_sum(self, m: int) -> NDArray[np.float64]:
         """Where the pass writes the block's sum over seeds of |r| (K v)."""
@@ -442,54 +468,56 @@ class _RowMoments:
     ) -> None:
         """The block's row losses u, 1 / max(|y|, eps) (None: formed here) and its weighted
         sums of K v, K q and K u from the pass; K v is in ``abs_sum(m)`` already."""
-        weight = self.weight
+        j = rows.start // self.step
+        weight = self.block_weights[j]
         if not weight > 0.0:  # every weight of the block is zero: it adds nothing
             return
         ts = self.ts
         m = row_loss.size
         c = self.centred[:, :m]
-        means = sums / weight  # K v, K q, K u
+        means = np.divide(sums, weight, out=self.block_means[j, :3])  # K v, K q, K u
         if inverse_scale is None:
             inverse_scale = ts.inverse_scale(rows, c[2])
         np.multiply(c[0], inverse_scale, out=c[1])  # K q = K v / max(|y|, eps)
         c[:2] -= means[:2, np.newaxis]  # centred K v, K q: 1 / K^2 applied in ``finish``
         np.subtract(row_loss, means[2] / self.n_seeds, out=c[2])
-        mean_b = 0.0
-        wb = None if ts.weights is None else ts.weights[rows]
+        products = self.products[j]
+        used = c[: self.rows]
+        weighted = used
+        if ts.weights is not None:  # weight one factor of each product (b's once formed)
+            assert self.weighted is not None
+            weighted = self.weighted[: self.rows, :m]
+            ready = min(self.rows, 4)
+            np.multiply(c[:ready], ts.weights[rows], out=weighted[:ready])
         if self.ratios:
             b = np.subtract(ts.y[rows], ts.mean, out=c[4])
             np.multiply(b, b, out=b)  # (y - mean y)^2
-            mean_b = float(np.einsum("i->", b) if wb is None else np.einsum("i,i->", b, wb))
-            mean_b /= weight
+            assert ts.block_centred_sq is not None  # summed by _target_stats, same blocks
+            mean_b = ts.block_centred_sq[j] / weight
+            self.block_means[j, 4] = mean_b
             b -= mean_b
-        used = c[: self.rows]
-        weighted = used
-        if wb is not None:
-            assert self.weighted is not None
-            weighted = np.multiply(used, wb, out=self.weighted[: self.rows, :m])
-        sums_ = self.sums
-        sums_[: self.rows] += np.einsum("km,km->k", weighted, used)
-        if self.ratios:
-            sums_[5:7] += np.einsum("km,m->k", weighted[2:4], c[4])  # ub, eb
-            sums_[7] += np.einsum("m,m->", weighted[2], c[3])  # ue
-        self.block_weights.append(weight)
-        self.block_means.append((means[0], means[1], means[2], self.mean_e, mean_b))
+            if ts.weights is not None:
+                np.multiply(b, ts.weights[rows], out=weighted[4])
+            np.einsum("km,m->k", weighted[2:4], c[4], out=products[5:7])  # ub, eb
+            np.einsum("km,km->k", weighted[2:3], c[3:4], out=products[7:8])  # ue
+        np.einsum("km,km->k", weighted, used, out=products[: self.rows])
 
     def finish(self) -> dict[str, float]:
         """The co-moments about the overall weighted means: sum_i w_i (x_i - xbar)(y_i - ybar)."""
-        weights = np.array(self.block_weights)
-        means = np.array(self.block_means).reshape(-1, 5)
+        weights = self.block_weights
+        means = self.block_means
         k = float(self.n_seeds)
         means[:, :3] /= k  # the block means of K v, K q and K u
         total = float(weights.sum())
         centred = means - (weights @ means) / total if total > 0 else means * 0.0
         index = {"v": 0, "q": 1, "u": 2, "e": 3, "b": 4}
         scale = {"vv": 1.0 / k**2, "qq": 1.0 / k**2}  # their centred values were K v, K q
+        within = self.products.sum(axis=0)
         out = {}
         for j, name in enumerate(_PAIRS):
             x, y = centred[:, index[name[0]]], centred[:, index[name[1]]]
-            within = float(self.sums[j]) * scale.get(name, 1.0)
-            out[name] = within + float(np.einsum("j,j,j->", weights, x, y))
+            between = float(np.einsum("j,j,j->", weights, x, y))
+            out[name] = float(within[j]) * scale.get(name, 1.0) + between
         return out
 
 
@@ -981,7 +1009,7 @@ def _report(
     sigma2 = _as_noise_variance(noise_variance)
     n_seeds = p.shape[0]
     level = options.level
-    ts = _target_stats(y, w)
+    ts = _target_stats(y, w, _pass_step(n, n_seeds + 1) if with_intervals else None)
 
     with np.errstate(over="ignore", invalid="ignore"):
         res = _fused_pass(
