@@ -509,7 +509,8 @@ class _RowMoments:
         k = float(self.n_seeds)
         means[:, :3] /= k  # the block means of K v, K q and K u
         total = float(weights.sum())
-        centred = means - (weights @ means) / total if total > 0 else means * 0.0
+        overall = np.einsum("j,jx->x", weights, means) / total if total > 0 else 0.0
+        centred = means - overall
         index = {"v": 0, "q": 1, "u": 2, "e": 3, "b": 4}
         scale = {"vv": 1.0 / k**2, "qq": 1.0 / k**2}  # their centred values were K v, K q
         within = self.products.sum(axis=0)
