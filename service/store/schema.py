@@ -9,6 +9,8 @@ owner. Timestamps are timezone-aware UTC.
 from __future__ import annotations
 
 from sqlalchemy import (
+    BigInteger,
+    Boolean,
     Column,
     DateTime,
     Float,
@@ -52,6 +54,10 @@ holdouts = Table(
     Column("fingerprint", String(64), nullable=False),
     Column("created_by", String(32), nullable=False),  # token id
     Column("created_at", DateTime(timezone=True), nullable=False),
+    # Rows in the feedback slice (the rest is the sealed reserve); see holdout_data.
+    Column("feedback_rows", Integer, nullable=True),
+    # Set once by POST /close: no further submissions, the salt and the reserve revealed.
+    Column("closed_at", DateTime(timezone=True), nullable=True),
     UniqueConstraint("owner", "name", name="uq_holdouts_owner_name"),
 )
 
@@ -62,6 +68,10 @@ holdout_data = Table(
     Column("salt", LargeBinary(32), nullable=False),  # secret until a later reveal
     Column("ids", LargeBinary, nullable=False),  # compressed array, registration order
     Column("labels", LargeBinary, nullable=False),  # float64 targets or int32 class indices
+    # The feedback/reserve split, drawn once at registration and never changed: the seed of
+    # service.scoring.split.feedback_mask and the mask itself (compressed uint8, 1 = feedback).
+    Column("split_seed", BigInteger, nullable=True),
+    Column("feedback_mask", LargeBinary, nullable=True),
 )
 
 submissions = Table(
@@ -92,4 +102,56 @@ submission_data = Table(
     Column("row_losses", LargeBinary, nullable=False),
 )
 
-__all__ = ["holdout_data", "holdouts", "metadata", "submission_data", "submissions", "tokens"]
+submission_slices = Table(
+    "submission_slices",
+    metadata,
+    # The scoring core's report of a submission on one slice of the holdout's rows
+    # (``feedback`` or ``reserve``; the full-set report is submissions.report).
+    Column("submission_id", String(32), ForeignKey("submissions.id"), primary_key=True),
+    Column("slice", String(16), primary_key=True),
+    Column("n_rows", Integer, nullable=False),
+    Column("primary_value", Float, nullable=True),
+    Column("report", Text, nullable=False),
+)
+
+submission_guards = Table(
+    "submission_guards",
+    metadata,
+    # What the holdout's guard told the group about this submission.
+    Column("submission_id", String(32), ForeignKey("submissions.id"), primary_key=True),
+    Column("kind", String(16), nullable=False),  # ladder, rounded or none
+    Column("improved", Boolean, nullable=True),  # ladder only
+    # The submission whose feedback view the group is shown (itself unless the Ladder
+    # found no improvement, then the group's best at that moment).
+    Column("shown_submission_id", String(32), nullable=False),
+    Column("reported_loss", Float, nullable=True),  # the Ladder's reported (rounded) loss
+    Column("message", Text, nullable=False),
+)
+
+group_states = Table(
+    "group_states",
+    metadata,
+    # One row per group and holdout: the Ladder's state and the day's quota counter. Every
+    # scored submission updates this row first, in the transaction that stores it, so
+    # submissions of one group serialize on it (row lock; SQLite's write lock).
+    Column("holdout_id", String(32), ForeignKey("holdouts.id"), primary_key=True),
+    Column("group_name", String(64), primary_key=True),
+    Column("quota_day", String(10), nullable=True),  # UTC date, YYYY-MM-DD
+    Column("quota_used", Integer, nullable=False),
+    Column("best_submission_id", String(32), nullable=True),
+    Column("best_loss", Float, nullable=True),  # exact; owner-only
+    Column("reported_loss", Float, nullable=True),
+    Column("n_improvements", Integer, nullable=False),
+)
+
+__all__ = [
+    "group_states",
+    "holdout_data",
+    "holdouts",
+    "metadata",
+    "submission_data",
+    "submission_guards",
+    "submission_slices",
+    "submissions",
+    "tokens",
+]

@@ -104,6 +104,8 @@ class HoldoutRecord:
     fingerprint: str
     created_by: str
     created_at: datetime
+    feedback_rows: int | None = None  # rows in the feedback slice; the rest is the reserve
+    closed_at: datetime | None = None  # set once, by closing the holdout
 
 
 @dataclass(frozen=True)
@@ -118,6 +120,8 @@ class NewHoldout:
     labels: NDArray  # (n,) float64 targets or integer class indices
     salt: bytes
     fingerprint: str
+    split_seed: int | None = None  # seed of the feedback/reserve split
+    feedback_mask: NDArray | None = None  # (n,) bool, True = feedback row
 
 
 @dataclass
@@ -127,6 +131,8 @@ class HoldoutArrays:
     ids: NDArray  # (n,) str (fixed-width <U or object), registration order
     labels: NDArray  # (n,) float64 or intp class indices
     salt: bytes
+    feedback_mask: NDArray | None = None  # (n,) bool, True = feedback row; None: no split
+    split_seed: int | None = None
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
     @cached_property
@@ -339,6 +345,8 @@ class Store:
             fingerprint=row.fingerprint,
             created_by=row.created_by,
             created_at=_utc(row.created_at),
+            feedback_rows=row.feedback_rows,
+            closed_at=_utc(row.closed_at),
         )
 
     def insert_holdout(self, new: NewHoldout) -> HoldoutRecord:
@@ -358,6 +366,7 @@ class Store:
             fingerprint=new.fingerprint,
             created_by=new.created_by,
             created_at=_now(),
+            feedback_rows=None if new.feedback_mask is None else int(new.feedback_mask.sum()),
         )
         labels = new.labels.astype(np.float64 if new.task == "regression" else np.int32)
         try:
@@ -374,6 +383,7 @@ class Store:
                         fingerprint=record.fingerprint,
                         created_by=record.created_by,
                         created_at=record.created_at,
+                        feedback_rows=record.feedback_rows,
                     )
                 )
                 conn.execute(
@@ -382,6 +392,10 @@ class Store:
                         salt=new.salt,
                         ids=encode_array(new.ids),
                         labels=encode_array(labels),
+                        split_seed=new.split_seed,
+                        feedback_mask=None
+                        if new.feedback_mask is None
+                        else encode_array(np.asarray(new.feedback_mask, dtype=np.uint8)),
                     )
                 )
         except sa.exc.IntegrityError as exc:
@@ -427,7 +441,14 @@ class Store:
         labels = decode_array(row.labels)
         if labels.dtype.kind in "iu":
             labels = labels.astype(np.intp)
-        arrays = HoldoutArrays(ids=decode_text(row.ids), labels=labels, salt=bytes(row.salt))
+        mask = None if row.feedback_mask is None else decode_array(row.feedback_mask).astype(bool)
+        arrays = HoldoutArrays(
+            ids=decode_text(row.ids),
+            labels=labels,
+            salt=bytes(row.salt),
+            feedback_mask=mask,
+            split_seed=row.split_seed,
+        )
         with self._lock:
             self._cache[holdout_id] = arrays
             while len(self._cache) > self._cache_size:
@@ -456,6 +477,12 @@ class Store:
 
     def insert_submission(self, new: NewSubmission) -> SubmissionRecord:
         """Store a scored submission and its per-row losses in one transaction."""
+        with self.engine.begin() as conn:
+            return self.insert_submission_rows(conn, new)
+
+    @staticmethod
+    def insert_submission_rows(conn: sa.Connection, new: NewSubmission) -> SubmissionRecord:
+        """Insert a submission and its per-row losses within the caller's transaction."""
         record = SubmissionRecord(
             id=_new_id("sub_"),
             holdout_id=new.holdout_id,
@@ -471,31 +498,30 @@ class Store:
             created_at=_now(),
             report=new.report,
         )
-        with self.engine.begin() as conn:
-            conn.execute(
-                schema.submissions.insert().values(
-                    id=record.id,
-                    holdout_id=record.holdout_id,
-                    group_name=record.group,
-                    token_id=record.token_id,
-                    model=record.model,
-                    n_seeds=record.n_seeds,
-                    seeds=orjson.dumps(record.seeds).decode(),
-                    sweep_name=record.sweep_name,
-                    sweep_complexity=record.sweep_complexity,
-                    primary_metric=record.primary_metric,
-                    primary_value=record.primary_value,
-                    report=orjson.dumps(record.report).decode(),
-                    created_at=record.created_at,
-                )
+        conn.execute(
+            schema.submissions.insert().values(
+                id=record.id,
+                holdout_id=record.holdout_id,
+                group_name=record.group,
+                token_id=record.token_id,
+                model=record.model,
+                n_seeds=record.n_seeds,
+                seeds=orjson.dumps(record.seeds).decode(),
+                sweep_name=record.sweep_name,
+                sweep_complexity=record.sweep_complexity,
+                primary_metric=record.primary_metric,
+                primary_value=record.primary_value,
+                report=orjson.dumps(record.report).decode(),
+                created_at=record.created_at,
             )
-            conn.execute(
-                schema.submission_data.insert().values(
-                    submission_id=record.id,
-                    row_loss=new.row_loss,
-                    row_losses=encode_array(np.asarray(new.row_losses, dtype=np.float64)),
-                )
+        )
+        conn.execute(
+            schema.submission_data.insert().values(
+                submission_id=record.id,
+                row_loss=new.row_loss,
+                row_losses=encode_array(np.asarray(new.row_losses, dtype=np.float64)),
             )
+        )
         return record
 
     def get_submission(self, submission_id: str) -> SubmissionRecord | None:
