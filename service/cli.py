@@ -9,6 +9,7 @@
     heldout serve [--bind HOST:PORT] [--workers N]
     heldout openapi [--write [PATH]]
     heldout settings
+    heldout verify-fingerprint --salt HEX --fingerprint HEX [--task TASK] FILE
 
 The database is ``HELDOUT_DATABASE_URL`` (or ``--database-url``). Token commands create
 missing tables first, so ``heldout tokens create`` works on a fresh machine.
@@ -162,6 +163,29 @@ def _settings(args: argparse.Namespace) -> int:
     return 0
 
 
+def _verify_fingerprint(args: argparse.Namespace) -> int:
+    from service.verify import VerifyError, verify_file
+
+    try:
+        result = verify_file(
+            Path(args.file),
+            salt=args.salt,
+            expected=args.fingerprint,
+            kind=args.task,
+            id_column=args.id_column,
+            target_column=args.target_column,
+        )
+    except VerifyError as exc:
+        print(f"heldout: {exc}", file=sys.stderr)
+        return 2
+    if result.matched:
+        print("match")
+        print(f"{result.n_rows} rows, {result.kind} label encoding", file=sys.stderr)
+        return 0
+    print("mismatch")
+    return 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="heldout", description="Sealed holdouts and scored submissions."
@@ -214,6 +238,27 @@ def build_parser() -> argparse.ArgumentParser:
 
     settings = commands.add_parser("settings", help="print every setting as a Markdown table")
     settings.set_defaults(func=_settings)
+
+    verify = commands.add_parser(
+        "verify-fingerprint",
+        help="recompute a holdout's fingerprint from its labels and the salt revealed at close",
+        description="Prints 'match' (exit 0) or 'mismatch' (exit 1); exit 2 for unusable input.",
+    )
+    verify.add_argument("--salt", required=True, help="the salt a closed holdout shows (hex)")
+    verify.add_argument("--fingerprint", required=True, help="the registration fingerprint (hex)")
+    verify.add_argument(
+        "--task",
+        choices=("regression", "binary", "multiclass", "classification"),
+        help="how labels are encoded (default: try regression and classification)",
+    )
+    verify.add_argument("--id-column", default="id", help="id column or JSON key (default id)")
+    verify.add_argument(
+        "--target-column", default="y_true", help="label column or JSON key (default y_true)"
+    )
+    verify.add_argument(
+        "file", help="ids and labels in registration order: .csv, .parquet or .json"
+    )
+    verify.set_defaults(func=_verify_fingerprint)
     return parser
 
 

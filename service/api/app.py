@@ -36,11 +36,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         settings["DATABASE_URL"], label_cache_size=settings["LABEL_CACHE_SIZE"]
     )
 
-    from . import docs, health, holdouts, submissions
+    from . import docs, guarding, health, holdouts, submissions
     from .errors import register_error_handlers
 
     register_error_handlers(app)
-    for module in (health, holdouts, submissions, docs):
+    for module in (health, holdouts, submissions, guarding, docs):
         app.register_blueprint(module.bp)
 
     @app.after_request

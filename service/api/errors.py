@@ -13,6 +13,7 @@ Views never build error bodies: they raise. The tree::
     +-- PayloadTooLarge           413
     +-- UnsupportedMediaType      415
     +-- ValidationFailed          422  well-formed but wrong content; ``errors`` names each field
+    +-- TooManyRequests           429  a quota is used up; ``Retry-After`` says when to retry
     +-- ServiceUnavailable        503  the database cannot be reached
 
 Errors raised by other layers are mapped here too: ``service.ingest.IngestError`` keeps its
@@ -111,6 +112,10 @@ class ValidationFailed(ApiError):
     status, slug, title = 422, "invalid-content", "The request content is invalid"
 
 
+class TooManyRequests(ApiError):
+    status, slug, title = 429, "too-many-requests", "Quota used up"
+
+
 class ServiceUnavailable(ApiError):
     status, slug, title = 503, "unavailable", "Service unavailable"
 
@@ -128,6 +133,7 @@ _BY_STATUS: dict[int, type[ApiError]] = {
         PayloadTooLarge,
         UnsupportedMediaType,
         ValidationFailed,
+        TooManyRequests,
         ServiceUnavailable,
     )
 }
@@ -262,6 +268,7 @@ __all__ = [
     "NotFound",
     "PayloadTooLarge",
     "ServiceUnavailable",
+    "TooManyRequests",
     "Unauthorized",
     "UnsupportedMediaType",
     "ValidationFailed",

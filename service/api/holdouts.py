@@ -8,7 +8,7 @@ from flask import Blueprint, Response, request, url_for
 
 from service.scoring import catalog
 
-from . import registration
+from . import guarding, registration
 from .auth import current_principal, get_store, may_see_holdout, requires, visible_holdout
 from .bodies import (
     CSV,
@@ -26,7 +26,6 @@ from .bodies import (
 )
 from .errors import NotAcceptable
 from .openapi import operation
-from .present import holdout_out
 from .responses import respond, respond_body
 from .schemas import (
     HoldoutCreate,
@@ -101,12 +100,16 @@ def create_holdout() -> Response:
             lim,
         )
     prepared = registration.prepare(data, lim)
+    store = get_store()
     record, created = registration.register(
-        get_store(), prepared, owner=principal.owner, token_id=principal.token.id
+        store, prepared, owner=principal.owner, token_id=principal.token.id
     )
     location = url_for("holdouts.get_holdout", holdout_id=record.id)
     return respond(
-        HoldoutOut(), holdout_out(record), 201 if created else 200, {"Location": location}
+        HoldoutOut(),
+        guarding.holdout_view(store, record, principal),
+        201 if created else 200,
+        {"Location": location},
     )
 
 
@@ -126,7 +129,8 @@ def list_holdouts() -> Response:
         records = store.list_holdouts(owner=principal.owner)
     else:
         records = [h for h in store.list_holdouts() if may_see_holdout(principal, h)]
-    return respond(HoldoutList(), {"holdouts": [holdout_out(h) for h in records]})
+    views = [guarding.holdout_view(store, h, principal) for h in records]
+    return respond(HoldoutList(), {"holdouts": views})
 
 
 @bp.get("/<holdout_id>")
@@ -135,7 +139,9 @@ def list_holdouts() -> Response:
     summary="Show a holdout's metadata", tag="holdouts", response=(200, HoldoutOut), errors=(404,)
 )
 def get_holdout(holdout_id: str) -> Response:
-    return respond(HoldoutOut(), holdout_out(visible_holdout(current_principal(), holdout_id)))
+    principal = current_principal()
+    record = visible_holdout(principal, holdout_id)
+    return respond(HoldoutOut(), guarding.holdout_view(get_store(), record, principal))
 
 
 @bp.get("/<holdout_id>/ids")

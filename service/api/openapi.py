@@ -38,6 +38,7 @@ _STATUS_TEXT = {
     413: "Body larger than HELDOUT_MAX_BODY_BYTES",
     415: "Unsupported Content-Type or Content-Encoding",
     422: "Well-formed but invalid content; errors names each field",
+    429: "Quota used up; Retry-After gives the seconds until it renews",
     503: "Database unreachable",
 }
 

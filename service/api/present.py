@@ -37,7 +37,8 @@ def _sweep(record: SubmissionRecord) -> dict[str, Any] | None:
     return {"name": record.sweep_name, "complexity": record.sweep_complexity}
 
 
-def _redact(report: dict[str, Any]) -> dict[str, Any]:
+def redact(report: dict[str, Any]) -> dict[str, Any]:
+    """The report without the single-row metrics (``catalog.REVEALS_ROW``): what submitters see."""
     out = dict(report)
     for key in _METRIC_KEYED:
         if isinstance(out.get(key), dict):
@@ -55,7 +56,7 @@ def submission_out(
     record: SubmissionRecord, holdout: HoldoutRecord, principal: Principal
 ) -> dict[str, Any]:
     assert record.report is not None
-    report = record.report if principal.role != "submitter" else _redact(record.report)
+    report = record.report if principal.role != "submitter" else redact(record.report)
     return {
         "id": record.id,
         "holdout_id": record.holdout_id,
@@ -95,4 +96,4 @@ def summary_out(record: SubmissionRecord) -> dict[str, Any]:
     }
 
 
-__all__ = ["holdout_out", "submission_out", "summary_out"]
+__all__ = ["holdout_out", "redact", "submission_out", "summary_out"]

@@ -38,6 +38,7 @@ from service.store import (
 )
 from service.store.fingerprint import FORBIDDEN_CHARACTERS
 
+from . import guarding
 from .errors import Conflict, ValidationFailed, problem_error
 from .schemas import HoldoutPolicy
 
@@ -184,6 +185,7 @@ def prepare(data: HoldoutInput, limits: Limits) -> Prepared:
     policy = {
         "primary_metric": metric.name if metric else None,
         "groups": None if groups is None else sorted(set(groups)),
+        **guarding.reuse_policy(policy_in),
     }
 
     classes: list[str] | None = None
@@ -237,6 +239,8 @@ def prepare(data: HoldoutInput, limits: Limits) -> Prepared:
             labels = np.zeros(n, dtype=np.intp)
         else:
             labels = index.to_numpy(zero_copy_only=False).astype(np.intp)
+    if not errors:
+        errors.extend(guarding.split_errors(policy, task, labels))
     if errors:
         raise ValidationFailed("The holdout is invalid.", errors)
     return Prepared(
@@ -288,6 +292,9 @@ def register(
     if existing is not None:
         return _same_or_conflict(existing, prepared, store), False
     salt = new_salt()
+    split_seed, mask = guarding.draw_split(
+        prepared.task, prepared.labels, prepared.policy["feedback_fraction"]
+    )
     new = NewHoldout(
         owner=owner,
         name=prepared.name,
@@ -299,6 +306,8 @@ def register(
         labels=prepared.labels,
         salt=salt,
         fingerprint=fingerprint(salt, prepared.ids.tolist(), prepared.label_texts),
+        split_seed=split_seed,
+        feedback_mask=mask,
     )
     try:
         return store.insert_holdout(new), True

@@ -98,11 +98,81 @@ class HoldoutPolicy(Schema):
         allow_none=True,
         metadata={"description": "Submitter groups allowed to submit; absent or null: all."},
     )
+    feedback_fraction = FiniteFloat(
+        load_default=None,
+        allow_none=True,
+        validate=validate.Range(min=0, max=1, min_inclusive=False, max_inclusive=False),
+        metadata={
+            "description": "Share of rows in the feedback slice, whose scores submitters see; "
+            "the rest is the sealed reserve. Split at random once, at registration "
+            "(stratified by class for classification). Default 0.3."
+        },
+    )
+    guard = fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=validate.OneOf(["ladder", "rounded", "none"]),
+        metadata={
+            "description": "What submitters are told: `ladder` (default; the parameter-free "
+            "Ladder per group on the primary metric's per-row loss: a submission that does "
+            "not beat the group's best by the margin is answered with the best's scores), "
+            "`rounded` (every number rounded to `decimals`) or `none` (exact; trusted "
+            "pipelines)."
+        },
+    )
+    decimals = fields.Integer(
+        load_default=None,
+        allow_none=True,
+        strict=True,
+        validate=validate.Range(min=0, max=12),
+        metadata={
+            "description": "Decimals of every number submitters see (ladder, rounded). Default 4."
+        },
+    )
+    daily_quota = fields.Integer(
+        load_default=None,
+        allow_none=True,
+        strict=True,
+        validate=validate.Range(min=1),
+        metadata={
+            "description": "Scored submissions per group per UTC day; more get 429 with "
+            "Retry-After. Default null: no quota."
+        },
+    )
+    min_rows = fields.Integer(
+        load_default=None,
+        allow_none=True,
+        strict=True,
+        validate=validate.Range(min=1),
+        metadata={
+            "description": "Fewest rows each slice may have; registration fails with 422 when "
+            "the split would leave fewer. Default 30."
+        },
+    )
 
 
 class HoldoutPolicyOut(Schema):
     primary_metric = fields.String(required=True)
     groups = fields.List(fields.String(), allow_none=True, required=True)
+    feedback_fraction = fields.Float(required=True)
+    guard = fields.String(required=True)
+    decimals = fields.Integer(required=True)
+    daily_quota = fields.Integer(allow_none=True, required=True)
+    min_rows = fields.Integer(required=True)
+
+
+class HoldoutSplitOut(Schema):
+    feedback_rows = fields.Integer(allow_none=True, required=True)
+    reserve_rows = fields.Integer(allow_none=True, required=True)
+    seed = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Seed of the split (decimal text): shown to owners and admins, and "
+            "to everyone once the holdout is closed. With the labels it reproduces the mask "
+            "(service.scoring.split.feedback_mask)."
+        },
+    )
 
 
 class HoldoutCreate(Schema):
@@ -196,6 +266,20 @@ class HoldoutOut(Schema):
     policy = fields.Nested(HoldoutPolicyOut, required=True)
     owner = fields.String(required=True, metadata={"description": "group:<name> or token:<id>"})
     created_at = fields.DateTime(required=True)
+    split = fields.Nested(HoldoutSplitOut, required=True)
+    closed_at = fields.DateTime(
+        allow_none=True,
+        required=True,
+        metadata={"description": "When the holdout was closed; null while it takes submissions."},
+    )
+    salt = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "The fingerprint's salt (hex), revealed when the holdout closes; "
+            "null before."
+        },
+    )
 
 
 class HoldoutList(Schema):
@@ -362,6 +446,56 @@ class SweepSpecOut(Schema):
 _SCORES = {"description": "Metric name to value; null where the metric is undefined."}
 
 
+class GuardOut(Schema):
+    """What the holdout's guard told the group about a submission."""
+
+    kind = fields.String(required=True, validate=validate.OneOf(["ladder", "rounded", "none"]))
+    improved = fields.Boolean(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Ladder: whether this submission became the group's best."},
+    )
+    message = fields.String(required=True)
+    best_submission_id = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Ladder: the group's best submission at scoring time, whose "
+            "feedback scores are shown (this one when it improved)."
+        },
+    )
+    reported_loss = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Ladder: the reported (rounded) mean per-row loss of the best."},
+    )
+    decimals = fields.Integer(allow_none=True, required=True)
+
+
+class SliceViewOut(Schema):
+    """The scoring core's report of a submission on one slice of the holdout's rows."""
+
+    slice = fields.String(required=True, validate=validate.OneOf(["feedback", "reserve", "full"]))
+    n_rows = fields.Integer(required=True)
+    primary_value = fields.Float(allow_none=True, required=True)
+    scores = fields.Dict(
+        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
+    )
+    intervals = fields.Dict(keys=fields.String(), values=fields.Nested(IntervalOut), required=True)
+    seed_spread = fields.Dict(keys=fields.String(), values=fields.Nested(SpreadOut), required=True)
+    ensemble = fields.Dict(
+        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
+    )
+    bias_variance = fields.Dict(
+        keys=fields.String(), values=fields.Nested(DecompositionOut), required=True
+    )
+    flags = fields.List(fields.Nested(FlagOut), required=True)
+    train_scores = fields.Dict(
+        keys=fields.String(), values=fields.Float(allow_none=True), allow_none=True, required=True
+    )
+    details = fields.Dict(keys=fields.String(), required=True)
+
+
 class SubmissionResult(Schema):
     """A scored submission: everything the scoring core reports, and nothing per row."""
 
@@ -406,6 +540,24 @@ class SubmissionResult(Schema):
     fingerprint = fields.String(
         required=True, metadata={"description": "The holdout's fingerprint at scoring time."}
     )
+    slice = fields.String(
+        required=True,
+        validate=validate.OneOf(["feedback", "full"]),
+        metadata={
+            "description": "Rows the top-level numbers describe: `full` for owners and admins; "
+            "`feedback` for submitters, as the guard reports them."
+        },
+    )
+    guard = fields.Nested(GuardOut, allow_none=True, required=True)
+    views = fields.Dict(
+        keys=fields.String(),
+        values=fields.Nested(SliceViewOut),
+        required=True,
+        metadata={
+            "description": "Owners and admins: `feedback`, `reserve` and `full`. Submitters: "
+            "empty while the holdout is open; `reserve` after it is closed."
+        },
+    )
 
 
 class SubmissionSummary(Schema):
@@ -418,6 +570,11 @@ class SubmissionSummary(Schema):
     primary_metric = fields.String(required=True)
     primary_value = fields.Float(allow_none=True, required=True)
     sweep = fields.Nested(SweepSpecOut, allow_none=True, required=True)
+    slice = fields.String(
+        required=True,
+        metadata={"description": "`full` (owners, admins) or `feedback` as the guard reports."},
+    )
+    guard = fields.Nested(GuardOut, allow_none=True, required=True)
 
 
 class PageQuery(Schema):
@@ -435,6 +592,23 @@ class SubmissionList(Schema):
     offset = fields.Integer(required=True)
 
 
+class FeedbackTunedOut(Schema):
+    """Welch's one-sided test that the best's feedback loss is below its reserve loss."""
+
+    code = fields.String(required=True)
+    flagged = fields.Boolean(required=True)
+    loss = fields.String(required=True, metadata={"description": "The per-row loss tested."})
+    feedback_loss = fields.Float(required=True)
+    reserve_loss = fields.Float(required=True)
+    difference = fields.Float(required=True)
+    statistic = fields.Float(allow_none=True, required=True)
+    df = fields.Float(allow_none=True, required=True)
+    p_value = fields.Float(required=True)
+    alpha = fields.Float(required=True)
+    n_feedback = fields.Integer(required=True)
+    n_reserve = fields.Integer(required=True)
+
+
 class StandingsEntry(Schema):
     rank = fields.Integer(required=True, metadata={"description": "1 is best; ties share."})
     group = fields.String(required=True)
@@ -448,13 +622,54 @@ class StandingsEntry(Schema):
     model = fields.String(allow_none=True, required=True)
     n_submissions = fields.Integer(required=True)
     created_at = fields.DateTime(required=True)
+    reserve_value = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Owners and admins: the same submission on the reserve slice."},
+    )
+    reserve_interval = fields.Nested(IntervalOut, allow_none=True, required=True)
+    feedback_tuned = fields.Nested(
+        FeedbackTunedOut,
+        allow_none=True,
+        required=True,
+        metadata={"description": "Owners and admins: adaptive overfitting to the feedback slice."},
+    )
+
+
+class FinalStandingsEntry(Schema):
+    rank = fields.Integer(required=True, metadata={"description": "1 is best; ties share."})
+    group = fields.String(required=True)
+    value = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={"description": "The group's best submission (as in entries) on the reserve."},
+    )
+    interval = fields.Nested(IntervalOut, allow_none=True, required=True)
+    submission_id = fields.String(allow_none=True, required=True)
+    model = fields.String(allow_none=True, required=True)
+    n_submissions = fields.Integer(required=True)
+    created_at = fields.DateTime(required=True)
 
 
 class Standings(Schema):
     holdout_id = fields.String(required=True)
     primary_metric = fields.String(required=True)
     higher_is_better = fields.Boolean(required=True)
+    slice = fields.String(
+        required=True, metadata={"description": "Rows the entries rank on: `feedback`."}
+    )
+    guard = fields.String(required=True)
+    closed_at = fields.DateTime(allow_none=True, required=True)
     entries = fields.List(fields.Nested(StandingsEntry), required=True)
+    final = fields.List(
+        fields.Nested(FinalStandingsEntry),
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "After close: the groups ranked on the reserve slice; shown to owners, "
+            "admins and the groups that submitted. Null before close."
+        },
+    )
 
 
 class SweepQuery(Schema):
@@ -467,6 +682,14 @@ class SweepQuery(Schema):
         metadata={
             "description": "Owners and admins: the group whose sweep to show (required "
             "for them). Submitters always see their own group's."
+        },
+    )
+    slice = fields.String(
+        load_default=None,
+        validate=validate.OneOf(["feedback", "reserve", "full"]),
+        metadata={
+            "description": "Rows the curve is computed on. Owners and admins: any (default "
+            "full). Submitters: feedback (the default), and reserve once the holdout is closed."
         },
     )
 
@@ -493,6 +716,14 @@ class SweepOut(Schema):
     points = fields.List(fields.Nested(SweepPointOut), required=True)
     best_complexity = fields.Float(required=True)
     one_se_complexity = fields.Float(required=True)
+    slice = fields.String(required=True)
+    n_withheld = fields.Integer(
+        required=True,
+        metadata={
+            "description": "Submissions of the sweep left out: under the Ladder a submitter's "
+            "feedback curve uses only the submissions the Ladder accepted."
+        },
+    )
 
 
 # ----------------------------------------------------------------------------------- health

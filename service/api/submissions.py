@@ -8,9 +8,9 @@ from flask import Blueprint, Response, current_app, url_for
 
 from service.scoring import ScoringInputError, catalog
 from service.scoring.sweep import SweepInput, complexity_sweep
-from service.store import HoldoutRecord, NewSubmission, SubmissionRecord
+from service.store import HoldoutRecord, NewSubmission
 
-from . import evaluate
+from . import evaluate, guarding
 from .auth import current_principal, get_store, requires, visible_holdout, visible_submission
 from .bodies import (
     CSV,
@@ -27,7 +27,6 @@ from .bodies import (
 )
 from .errors import NotFound, ValidationFailed, problem_error
 from .openapi import operation
-from .present import submission_out, summary_out
 from .responses import respond
 from .schemas import (
     PageQuery,
@@ -57,8 +56,10 @@ Predictions for every row of the holdout, each id exactly once in any order.
   query (`SubmissionUploadQuery`), or `multipart/form-data` with those fields and the table
   as `file`. Training rows (`train`) can be sent in JSON only.
 
-The response holds every score the scoring core reports on the holdout, and never a label,
-a per-row loss or a per-row residual."""
+The response holds the scores of the holdout's feedback slice as its guard reports them
+(`guard`; see the holdout's policy), never anything computed on the sealed reserve rows
+before the holdout is closed, and never a label, a per-row loss or a per-row residual.
+A closed holdout answers 409; a group over its daily quota 429 with `Retry-After`."""
 
 
 @bp.post("/v1/holdouts/<holdout_id>/submissions")
@@ -75,12 +76,14 @@ a per-row loss or a per-row residual."""
     },
     query=SubmissionUploadQuery(partial=True),
     response=(201, SubmissionResult),
-    errors=(400, 404, 413, 415, 422),
+    errors=(400, 404, 409, 413, 415, 422, 429),
 )
 def create_submission(holdout_id: str) -> Response:
     principal = current_principal()
     holdout = visible_holdout(principal, holdout_id)
     store = get_store()
+    assert principal.group is not None
+    guarding.check_can_submit(store, holdout, principal.group)
     arrays = store.holdout_arrays(holdout.id)
     media = body_media_type()
     lim = limits()
@@ -94,9 +97,12 @@ def create_submission(holdout_id: str) -> Response:
             fields, raw, table_type = query_fields(SubmissionUploadQuery()), raw_body(), media
         table = parse_table(raw, table_type, task=catalog.kind(holdout.task))
         sub = evaluate.from_table(fields, table, holdout, arrays, lim)
-    result = evaluate.evaluate(holdout, arrays, sub, evaluate.options_from(current_app.config))
-    assert principal.group is not None
-    record = store.insert_submission(
+    options = evaluate.options_from(current_app.config)
+    result, slices = guarding.score_slices(holdout, arrays, sub, options)
+    record, guard = guarding.store_submission(
+        store,
+        holdout,
+        arrays,
         NewSubmission(
             holdout_id=holdout.id,
             group=principal.group,
@@ -110,12 +116,13 @@ def create_submission(holdout_id: str) -> Response:
             report=result.report,
             row_loss=result.row_loss,
             row_losses=result.row_losses,
-        )
+        ),
+        result,
+        slices,
     )
     location = url_for("submissions.get_submission", submission_id=record.id)
-    return respond(
-        SubmissionResult(), submission_out(record, holdout, principal), 201, {"Location": location}
-    )
+    view = guarding.submission_view(store, record, holdout, principal, guard)
+    return respond(SubmissionResult(), view, 201, {"Location": location})
 
 
 @bp.get("/v1/submissions/<submission_id>")
@@ -123,15 +130,17 @@ def create_submission(holdout_id: str) -> Response:
 @operation(
     summary="Show a scored submission",
     tag="submissions",
-    description="Submitters see their own group's submissions; owners those to their "
-    "holdouts; admins all.",
+    description="Submitters see their own group's submissions, as the holdout's guard "
+    "reports them (feedback slice; the reserve view too once the holdout is closed); owners "
+    "those to their holdouts and admins all, with the feedback, reserve and full views.",
     response=(200, SubmissionResult),
     errors=(404,),
 )
 def get_submission(submission_id: str) -> Response:
     principal = current_principal()
     record, holdout = visible_submission(principal, submission_id)
-    return respond(SubmissionResult(), submission_out(record, holdout, principal))
+    view = guarding.submission_view(get_store(), record, holdout, principal)
+    return respond(SubmissionResult(), view)
 
 
 @bp.get("/v1/holdouts/<holdout_id>/submissions")
@@ -157,7 +166,7 @@ def list_submissions(holdout_id: str) -> Response:
     return respond(
         SubmissionList(),
         {
-            "submissions": [summary_out(r) for r in records],
+            "submissions": guarding.summaries_view(store, records, holdout, principal),
             "total": store.count_submissions(holdout.id, group=group),
             "limit": page["limit"],
             "offset": page["offset"],
@@ -165,74 +174,26 @@ def list_submissions(holdout_id: str) -> Response:
     )
 
 
-def _best_per_group(records: list[SubmissionRecord], metric: str) -> list[dict[str, Any]]:
-    best: dict[str, SubmissionRecord] = {}
-    counts: dict[str, int] = {}
-    for r in records:  # oldest first: a later submission must be strictly better to win
-        counts[r.group] = counts.get(r.group, 0) + 1
-        current = best.get(r.group)
-        if current is None or catalog.ranking_key(metric, r.primary_value) < catalog.ranking_key(
-            metric, current.primary_value
-        ):
-            best[r.group] = r
-    ordered = sorted(
-        best.values(), key=lambda r: (catalog.ranking_key(metric, r.primary_value), r.created_at)
-    )
-    keys = [catalog.ranking_key(metric, r.primary_value) for r in ordered]
-    return [
-        {"rank": 1 + sum(k < keys[i] for k in keys), "record": r, "n_submissions": counts[r.group]}
-        for i, r in enumerate(ordered)
-    ]
-
-
 @bp.get("/v1/holdouts/<holdout_id>/standings")
 @requires("admin", "owner", "submitter")
 @operation(
     summary="Best submission per group by the primary metric",
     tag="submissions",
-    description="One entry per group that has submitted: its best submission by the "
-    "holdout's primary metric (the earliest among equals), ranked; equal values share a "
-    "rank, undefined values rank last. Submitters see every group's value and count, but "
-    "submission ids and model names of their own group only.",
+    description="One entry per group that has submitted: its best submission on the "
+    "feedback slice (under the Ladder the group's Ladder best; otherwise the best value, "
+    "the earliest among equals), ranked; equal values share a rank, undefined values rank "
+    "last. Submitters see every group's value as the guard reports it and its count, but "
+    "submission ids and model names of their own group only; owners and admins see the "
+    "exact feedback value, the reserve value and the feedback_tuned test. After close, "
+    "`final` ranks the same submissions on the reserve slice, for owners and the groups "
+    "that submitted.",
     response=(200, Standings),
     errors=(404,),
 )
 def standings(holdout_id: str) -> Response:
     principal = current_principal()
     holdout = visible_holdout(principal, holdout_id)
-    store = get_store()
-    metric = holdout.policy["primary_metric"]
-    entries = []
-    for item in _best_per_group(store.list_submissions(holdout.id), metric):
-        record: SubmissionRecord = item["record"]
-        own = principal.role != "submitter" or record.group == principal.group
-        full = store.get_submission(record.id)
-        interval = (
-            None
-            if full is None or full.report is None
-            else (full.report.get("intervals", {}).get(metric))
-        )
-        entries.append(
-            {
-                "rank": item["rank"],
-                "group": record.group,
-                "value": record.primary_value,
-                "interval": interval,
-                "submission_id": record.id if own else None,
-                "model": record.model if own else None,
-                "n_submissions": item["n_submissions"],
-                "created_at": record.created_at,
-            }
-        )
-    return respond(
-        Standings(),
-        {
-            "holdout_id": holdout.id,
-            "primary_metric": metric,
-            "higher_is_better": catalog.METRICS[metric].higher_is_better,
-            "entries": entries,
-        },
-    )
+    return respond(Standings(), guarding.standings_view(get_store(), holdout, principal))
 
 
 def _sweep_group(holdout: HoldoutRecord, requested: str | None, name: str) -> str:
@@ -258,7 +219,9 @@ def _sweep_group(holdout: HoldoutRecord, requested: str | None, name: str) -> st
     description="Built from the group's submissions whose sweep.name is `name`, one point "
     "per complexity (the latest submission at a repeated complexity). Loss: the holdout's "
     "stored per-row loss (squared error for regression; zero-one, log or Brier for "
-    "classification, following the primary metric). Needs at least two holdout rows.",
+    "classification, following the primary metric). Needs at least two rows. Submitters get "
+    "the curve on the feedback slice, rounded unless the guard is none, and under the Ladder "
+    "from the submissions it accepted only (`n_withheld` counts the others).",
     query=SweepQuery,
     response=(200, SweepOut),
     errors=(404, 422),
@@ -268,22 +231,25 @@ def sweep(holdout_id: str, name: str) -> Response:
     holdout = visible_holdout(principal, holdout_id)
     query = query_fields(SweepQuery())
     group = _sweep_group(holdout, query["group"], name)
-    members = get_store().sweep_members(holdout.id, group, name)
+    store = get_store()
+    members = store.sweep_members(holdout.id, group, name)
     if not members:
         raise NotFound(f"Group {group!r} has no sweep named {name!r} on this holdout.")
+    source = guarding.sweep_source(store, holdout, principal, members, query["slice"])
+    if not source.members:
+        raise guarding.missing_sweep(group, name, source.n_withheld)
     latest = {}
-    for m in members:  # oldest first, so the latest at each complexity wins
-        latest[m.submission.sweep_complexity] = m
+    for submission, report, losses in source.members:  # oldest first: the latest wins
+        latest[submission.sweep_complexity] = (submission, report, losses)
     row_loss = members[-1].row_loss
     spec = catalog.ROW_LOSSES[row_loss]
     points = []
-    for m in latest.values():
-        report = m.submission.report or {}
+    for submission, report, losses in latest.values():
         decomposition = report["bias_variance"][spec.decomposition]
         points.append(
             SweepInput(
-                complexity=float(m.submission.sweep_complexity),
-                test_row_losses=m.row_losses,
+                complexity=float(submission.sweep_complexity),
+                test_row_losses=losses,
                 bias=_number(decomposition["bias"]),
                 variance=_number(decomposition["variance"]),
                 train_loss=catalog.train_loss(row_loss, report.get("train_scores")),
@@ -295,7 +261,15 @@ def sweep(holdout_id: str, name: str) -> Response:
         raise ValidationFailed(
             "This sweep cannot be summarized.", [problem_error(exc.field, exc.message)]
         ) from None
-    by_complexity = {float(c): m.submission for c, m in latest.items()}
+    by_complexity = {float(c): entry[0] for c, entry in latest.items()}
+    points_out = [
+        {
+            **point.__dict__,
+            "submission_id": by_complexity[point.complexity].id,
+            "model": by_complexity[point.complexity].model,
+        }
+        for point in result.points
+    ]
     return respond(
         SweepOut(),
         {
@@ -303,16 +277,11 @@ def sweep(holdout_id: str, name: str) -> Response:
             "group": group,
             "name": name,
             "loss": result.loss,
-            "points": [
-                {
-                    **point.__dict__,
-                    "submission_id": by_complexity[point.complexity].id,
-                    "model": by_complexity[point.complexity].model,
-                }
-                for point in result.points
-            ],
+            "points": guarding.round_sweep_points(points_out, source.decimals),
             "best_complexity": result.best_complexity,
             "one_se_complexity": result.one_se_complexity,
+            "slice": source.slice,
+            "n_withheld": source.n_withheld,
         },
     )
 

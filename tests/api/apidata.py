@@ -13,10 +13,13 @@ from typing import Any
 
 import numpy as np
 
-N_REGRESSION = 37
-N_CLASSIFICATION = 41
+N_REGRESSION = 107
+N_CLASSIFICATION = 109
 CLASSES = ["qx7-heron", "qx7-marten", "qx7-osprey"]
 BINARY_CLASSES = ["zv3-negative", "zv3-positive"]
+# For registration tests with a handful of rows: slices of one row, no Ladder (which needs two
+# feedback rows). The default policy refuses slices under 30 rows.
+TINY_POLICY = {"min_rows": 1, "guard": "none"}
 
 
 @dataclass

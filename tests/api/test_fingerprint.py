@@ -12,7 +12,7 @@ from __future__ import annotations
 import hashlib
 from typing import Any
 
-from apidata import classification_body, register, regression_body
+from apidata import TINY_POLICY, classification_body, register, regression_body
 
 from service.store import canonical_encoding, canonical_label_texts, fingerprint
 
@@ -45,6 +45,7 @@ def test_classification_fingerprint_with_unusual_ids(owner: Any, store: Any) -> 
 
 def test_integer_ids_and_numeric_classes(owner: Any, store: Any) -> None:
     body = {"name": "n", "task": "binary", "ids": [10, 2, 33], "y_true": [0, 1, 1]}
+    body["policy"] = TINY_POLICY
     h = register(owner, body)
     salt = store.holdout_arrays(h.id).salt
     assert h.response["fingerprint"] == _documented(salt, ["10", "2", "33"], ["0", "1", "1"])

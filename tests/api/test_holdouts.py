@@ -10,7 +10,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from apidata import CLASSES, classification_body, register, regression_body
+from apidata import CLASSES, TINY_POLICY, classification_body, register, regression_body
 
 HOLDOUT_KEYS = {
     "id",
@@ -22,6 +22,9 @@ HOLDOUT_KEYS = {
     "policy",
     "owner",
     "created_at",
+    "split",
+    "closed_at",
+    "salt",
 }
 
 
@@ -33,7 +36,17 @@ def test_register_regression(owner: Any) -> None:
     assert set(out) == HOLDOUT_KEYS
     assert out["task"] == "regression" and out["n_rows"] == len(body["ids"])
     assert out["classes"] is None
-    assert out["policy"] == {"primary_metric": "rmse", "groups": None}
+    assert out["policy"] == {
+        "primary_metric": "rmse",
+        "groups": None,
+        "feedback_fraction": 0.3,
+        "guard": "ladder",
+        "decimals": 4,
+        "daily_quota": None,
+        "min_rows": 30,
+    }
+    assert out["closed_at"] is None and out["salt"] is None
+    assert out["split"]["feedback_rows"] + out["split"]["reserve_rows"] == out["n_rows"]
     assert out["owner"] == "group:team-a"
     assert len(out["fingerprint"]) == 64 and int(out["fingerprint"], 16) >= 0
     assert r.headers["Location"] == f"/v1/holdouts/{out['id']}"
@@ -54,6 +67,7 @@ def test_numeric_class_labels_sort_numerically(owner: Any) -> None:
         "task": "multiclass",
         "ids": list("abcdef"),
         "y_true": [10, 2, 1, 2, 10, 1],
+        "policy": TINY_POLICY,
     }
     assert register(owner, body).response["classes"] == ["1", "2", "10"]
 
@@ -165,6 +179,7 @@ def test_invalid_regression_holdouts(owner: Any, body: dict, field: str, count: 
 )
 def test_classification_classes(owner: Any, task: str, y: list, classes: Any, field: Any) -> None:
     body = {"name": "c", "task": task, "ids": ["r1", "r2", "r3"], "y_true": y}
+    body["policy"] = TINY_POLICY
     if classes is not None:
         body["classes"] = classes
     r = owner.post("/v1/holdouts", json=body)
@@ -206,6 +221,7 @@ def test_ids_as_csv(owner: Any, submitter: Any) -> None:
             "task": "regression",
             "ids": ids,
             "y_true": [1.0, 2.0, 3.0, 4.0, 5.0, 6.0],
+            "policy": TINY_POLICY,
         },
     )
     r = submitter.get(f"/v1/holdouts/{h.id}/ids", headers={"Accept": "text/csv"})
@@ -227,7 +243,14 @@ def test_ids_accept_negotiation(reg_holdout: Any, submitter: Any) -> None:
 
 def test_integer_ids_become_their_decimal_text(owner: Any, submitter: Any) -> None:
     h = register(
-        owner, {"name": "ints", "task": "regression", "ids": [3, 1, 20], "y_true": [0.5, 1.5, 2.5]}
+        owner,
+        {
+            "name": "ints",
+            "task": "regression",
+            "ids": [3, 1, 20],
+            "y_true": [0.5, 1.5, 2.5],
+            "policy": TINY_POLICY,
+        },
     )
     assert submitter.get(f"/v1/holdouts/{h.id}/ids").get_json()["ids"] == ["1", "20", "3"]
 

@@ -8,15 +8,19 @@ scanned for:
   the public id list of ``GET /ids``;
 - for classification, the label sequence itself (as names or as class indices).
 The log records of all those requests are scanned for labels and submitted values too.
+Before a holdout is closed, no number computed on its reserve rows (or on all rows) reaches
+a submitter, exact or rounded, whatever the guard.
 """
 
 from __future__ import annotations
 
 import gzip
 import logging
+import math
 from collections.abc import Iterator
 from typing import Any
 
+import numpy as np
 import orjson
 import pytest
 from apidata import (
@@ -26,6 +30,7 @@ from apidata import (
     regression_body,
     regression_submission,
 )
+from guarddata import holdout_mask
 
 
 def _label_texts(y: list[float]) -> set[str]:
@@ -178,3 +183,70 @@ def test_classification_labels_never_leave(owner: Any, submitter: Any) -> None:
     _scan(
         rec, n, set(), [y_names, y_index, [y_names[i] for i in order], [y_index[i] for i in order]]
     )
+
+
+def _floats(value: Any) -> Iterator[float]:
+    if isinstance(value, dict):
+        for item in value.values():
+            yield from _floats(item)
+    elif isinstance(value, list):
+        for item in value:
+            yield from _floats(item)
+    elif isinstance(value, float):
+        yield value
+
+
+@pytest.mark.parametrize("guard", ["ladder", "none"])
+def test_no_reserve_number_reaches_a_submitter_before_close(
+    owner: Any, submitter: Any, guard: str
+) -> None:
+    # Predictions far better on the reserve rows than on the feedback rows, so every number
+    # computed on the reserve (or on all rows) differs from its feedback twin; then no
+    # response a submitter can get may hold one of them, exact or rounded to the policy's
+    # decimals, nor a label, nor an array as long as either slice.
+    holdout = register(owner, {**regression_body(f"sealed-{guard}"), "policy": {"guard": guard}})
+    mask = holdout_mask(owner, holdout)
+    y = np.asarray(holdout.y)
+    rng = np.random.default_rng(17)
+    preds = np.where(mask, 300.0, 37.0) * rng.normal(size=(3, y.size)) + y
+    worse = np.where(mask, 350.0, 11.0) * rng.normal(size=(3, y.size)) + y
+    good, _ = regression_submission(holdout, sweep={"name": "seal", "complexity": 1})
+    index = {row_id: i for i, row_id in enumerate(holdout.ids)}
+    order = [index[i] for i in good["ids"]]
+    good["predictions"] = preds[:, order].tolist()
+    train_y = rng.normal(size=20)
+    good["train"] = {"y_true": train_y.tolist(), "predictions": [train_y.tolist()] * 3}
+    rec = Recorder(submitter)
+    _exercise(rec, holdout.id, good, [{**good, "ids": good["ids"][:-1]}])
+    second = {**good, "predictions": worse[:, order].tolist(), "train": None}
+    second["sweep"] = {"name": "seal", "complexity": 2}
+    r = rec.post(f"/v1/holdouts/{holdout.id}/submissions", json=second)
+    assert r.status_code == 201
+    rec.get(f"/v1/submissions/{r.get_json()['id']}")
+    rec.get(f"/v1/holdouts/{holdout.id}/sweeps/seal")
+    rec.get(f"/v1/holdouts/{holdout.id}/sweeps/seal?slice=reserve")
+    rec.get(f"/v1/holdouts/{holdout.id}/standings")
+
+    shown: set[float] = set()
+    sealed: set[float] = set()
+    for listing in owner.get(f"/v1/holdouts/{holdout.id}/submissions").get_json()["submissions"]:
+        views = owner.get(f"/v1/submissions/{listing['id']}").get_json()["views"]
+        shown |= set(_floats(views["feedback"]))
+        sealed |= set(_floats(views["reserve"])) | set(_floats(views["full"]))
+    # Numbers shared with the feedback view (training scores, the interval level) are not
+    # reserve information; the rest must never reach the submitter, in any form.
+    sealed = {v for v in sealed - shown if abs(v) > 1e-6 and math.isfinite(v)}
+    sealed_rounded = {round(v, 4) for v in sealed} - {round(v, 4) for v in shown}
+    assert len(sealed) > 50
+    for path, resp in rec.responses:
+        if resp.mimetype not in ("application/json", "application/problem+json"):
+            continue
+        for value in _floats(orjson.loads(resp.get_data())):
+            assert value not in sealed, (path, value)
+            assert value not in sealed_rounded, (path, value)
+    _scan(rec, y.size, _label_texts(holdout.y), [holdout.y])
+    n_feedback, n_reserve = int(mask.sum()), int((~mask).sum())
+    for path, resp in rec.responses:
+        if resp.mimetype in ("application/json", "application/problem+json"):
+            for lst in _lists(orjson.loads(resp.get_data())):
+                assert len(lst) not in (n_feedback, n_reserve), (path, "a per-row array")

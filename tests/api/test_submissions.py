@@ -28,6 +28,7 @@ from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
 
 from service.scoring import to_jsonable
 from service.scoring.classification import classification_report, classification_row_losses
+from service.scoring.guard import round_nested
 from service.scoring.regression import regression_report, regression_row_losses
 from service.scoring.sweep import SweepInput, complexity_sweep
 
@@ -63,7 +64,11 @@ RESULT_KEYS = {
     "details",
     "sweep",
     "fingerprint",
+    "slice",
+    "guard",
+    "views",
 }
+DECIMALS = 4  # the default policy's: submitters see every number rounded to it
 
 
 def _json(value: Any) -> Any:
@@ -103,24 +108,33 @@ def test_regression_result_is_the_cores_report(
     mse = np.mean([mean_squared_error(y, p) for p in preds])
     assert full["scores"]["mse"] == pytest.approx(mse, rel=1e-12)
     assert out["n_seeds"] == 3 and out["seeds"] == ["s1", "s2", "s3"]
-    assert out["primary_metric"] == "rmse" and out["primary_value"] == full["scores"]["rmse"]
+    assert full["primary_metric"] == "rmse" and full["primary_value"] == full["scores"]["rmse"]
     assert out["group"] == "g1" and out["model"] == "forest" and out["task"] == "regression"
-    assert out["n_rows"] == y.size and out["fingerprint"] == reg_holdout.response["fingerprint"]
+    assert full["n_rows"] == y.size and out["fingerprint"] == reg_holdout.response["fingerprint"]
     assert out["sweep"] is None
-    # Submitters get the same report without the single-row metrics.
+    # Submitters get the feedback slice's report (a group's first submission: the Ladder
+    # reports it), every number rounded, without the single-row metrics.
+    shown = round_nested(full["views"]["feedback"], DECIMALS)
+    assert out["slice"] == "feedback" and out["n_rows"] == shown["n_rows"] < y.size
+    assert out["primary_value"] == shown["scores"]["rmse"]
     for key in ("scores", "intervals", "seed_spread", "ensemble", "train_scores"):
-        assert set(out[key]) == set(full[key]) - {"max_error", "median_absolute_error"}
-        assert {k: full[key][k] for k in out[key]} == out[key]
-    assert out["bias_variance"] == full["bias_variance"] and out["flags"] == full["flags"]
+        assert set(out[key]) == set(shown[key]) - {"max_error", "median_absolute_error"}
+        assert {k: shown[key][k] for k in out[key]} == out[key]
+    assert out["bias_variance"] == shown["bias_variance"] and out["flags"] == shown["flags"]
 
 
-def test_one_flat_list_is_one_seed(options: Any, reg_holdout: Any, submitter: Any) -> None:
+def test_one_flat_list_is_one_seed(
+    options: Any, reg_holdout: Any, submitter: Any, owner: Any
+) -> None:
     body, preds = regression_submission(reg_holdout, n_seeds=1)
     body["predictions"] = body["predictions"][0]
     out = _submit(submitter, reg_holdout.id, body)
     assert out["n_seeds"] == 1 and out["seeds"] == ["0"]
     report = regression_report(np.asarray(reg_holdout.y), preds[0], options=options)
-    assert out["scores"]["mse"] == report.scores["mse"]
+    assert (
+        owner.get(f"/v1/submissions/{out['id']}").get_json()["scores"]["mse"]
+        == (report.scores["mse"])
+    )
 
 
 def test_stored_row_losses_are_the_cores(reg_holdout: Any, submitter: Any, store: Any) -> None:
@@ -149,20 +163,22 @@ def test_classification_result_is_the_cores_report(
     )
     full = owner.get(f"/v1/submissions/{out['id']}").get_json()
     expected = _json(report)
+    shown = round_nested(full["views"]["feedback"], DECIMALS)
     for key in REPORT_KEYS:
         assert full[key] == expected[key], key
-        assert out[key] == expected[key], key  # nothing to withhold for classification
+        assert out[key] == shown[key], key  # nothing to withhold for classification
     # reference: sklearn.metrics.accuracy_score and log_loss, averaged over seeds
-    assert out["scores"]["accuracy"] == pytest.approx(
+    assert full["scores"]["accuracy"] == pytest.approx(
         np.mean([accuracy_score(y, lab) for lab in labels]), rel=1e-12
     )
-    assert out["scores"]["log_loss"] == pytest.approx(
+    assert full["scores"]["log_loss"] == pytest.approx(
         np.mean([log_loss(y, p, labels=[0, 1, 2]) for p in probs]), rel=1e-9
     )
     assert out["primary_metric"] == "accuracy"
 
 
 def test_class_labels_only(options: Any, owner: Any, submitter: Any, store: Any) -> None:
+    # Owners see the full-set report; the feedback views are checked in test_guard_views.
     h = register(owner, classification_body("bin", classes=BINARY_CLASSES))
     rng = np.random.default_rng(2)
     labels = rng.integers(0, 2, size=(4, len(h.ids)))
@@ -171,7 +187,7 @@ def test_class_labels_only(options: Any, owner: Any, submitter: Any, store: Any)
         "ids": h.ids,
         "predictions": [[BINARY_CLASSES[k] for k in seed] for seed in labels],
     }
-    out = _submit(submitter, h.id, body)
+    out = owner.get(f"/v1/submissions/{_submit(submitter, h.id, body)['id']}").get_json()
     y = np.array([BINARY_CLASSES.index(v) for v in h.y])
     report = classification_report(y, 2, labels=labels, options=options)
     assert out["scores"] == _json(report.scores)
@@ -184,7 +200,7 @@ def test_log_loss_holdout_requires_probabilities(
     body = {**classification_body(), "policy": {"primary_metric": "log_loss"}}
     h = register(owner, body)
     sub, probs = probability_submission(h, model="p")
-    out = _submit(submitter, h.id, sub)
+    out = owner.get(f"/v1/submissions/{_submit(submitter, h.id, sub)['id']}").get_json()
     y = np.array([h.response["classes"].index(v) for v in h.y])
     assert (
         out["primary_value"]
@@ -328,9 +344,11 @@ def test_standings_rank_groups_by_the_primary_metric(
             values.setdefault(g, []).append(out["primary_value"])
     table = owner.get(f"/v1/holdouts/{reg_holdout.id}/standings").get_json()
     assert table["primary_metric"] == "rmse" and table["higher_is_better"] is False
+    # Submitters saw rounded feedback values (the Ladder repeats a group's best when a
+    # submission does not improve); owners see the exact feedback values of the same bests.
     best = {g: min(v) for g, v in values.items()}  # rmse: lower is better
     assert [e["group"] for e in table["entries"]] == sorted(best, key=best.get)
-    assert [e["value"] for e in table["entries"]] == sorted(best.values())
+    assert [round(e["value"], DECIMALS) for e in table["entries"]] == sorted(best.values())
     assert [e["rank"] for e in table["entries"]] == [1, 2, 3]
     assert {e["group"]: e["n_submissions"] for e in table["entries"]} == {"ga": 2, "gb": 1, "gc": 2}
     for e in table["entries"]:
@@ -382,7 +400,8 @@ def test_sweep_is_the_cores_complexity_sweep(
             )
         )
     expected = _json(complexity_sweep(points, loss="squared"))
-    out = submitter.get(f"/v1/holdouts/{reg_holdout.id}/sweeps/depth").get_json()
+    # Owners see the curve on all rows by default (submitters' feedback curves: test_guard_views).
+    out = owner.get(f"/v1/holdouts/{reg_holdout.id}/sweeps/depth?group=g1").get_json()
     assert out["loss"] == "squared" and out["group"] == "g1" and out["name"] == "depth"
     assert out["best_complexity"] == expected["best_complexity"]
     assert out["one_se_complexity"] == expected["one_se_complexity"]
@@ -392,13 +411,13 @@ def test_sweep_is_the_cores_complexity_sweep(
     ]
     # Owners name the group; without it the request is incomplete.
     path = f"/v1/holdouts/{reg_holdout.id}/sweeps/depth"
-    assert owner.get(f"{path}?group=g1").get_json() == out
+    assert out["slice"] == "full" and submitter.get(path).get_json()["slice"] == "feedback"
     assert "group" in _problem_fields(owner.get(path))
     assert owner.get(f"{path}?group=g9").status_code == 404
     assert submitter.get(f"/v1/holdouts/{reg_holdout.id}/sweeps/width").status_code == 404
 
 
-def test_gzip_json_body(options: Any, reg_holdout: Any, submitter: Any) -> None:
+def test_gzip_json_body(options: Any, reg_holdout: Any, submitter: Any, owner: Any) -> None:
     body, preds = regression_submission(reg_holdout)
     r = submitter.post(
         f"/v1/holdouts/{reg_holdout.id}/submissions",
@@ -407,7 +426,8 @@ def test_gzip_json_body(options: Any, reg_holdout: Any, submitter: Any) -> None:
     )
     assert r.status_code == 201, r.get_json()
     report = regression_report(np.asarray(reg_holdout.y), preds, options=options)
-    assert r.get_json()["scores"]["mse"] == report.scores["mse"]
+    full = owner.get(f"/v1/submissions/{r.get_json()['id']}").get_json()
+    assert full["scores"]["mse"] == report.scores["mse"]
 
 
 def _prediction_table(holdout: Any, body: dict[str, Any]) -> pa.Table:
@@ -418,8 +438,11 @@ def _prediction_table(holdout: Any, body: dict[str, Any]) -> pa.Table:
 
 
 def test_parquet_and_csv_submissions_score_like_json(
-    options: Any, reg_holdout: Any, submitter: Any
+    options: Any, reg_holdout: Any, submitter: Any, owner: Any
 ) -> None:
+    def full_mse(r: Any) -> float:
+        return owner.get(f"/v1/submissions/{r.get_json()['id']}").get_json()["scores"]["mse"]
+
     body, preds = regression_submission(reg_holdout)
     expected = regression_report(np.asarray(reg_holdout.y), preds, options=options).scores
     table = _prediction_table(reg_holdout, body)
@@ -431,7 +454,7 @@ def test_parquet_and_csv_submissions_score_like_json(
     )
     assert r.status_code == 201, r.get_json()
     assert r.get_json()["seeds"] == ["s0", "s1", "s2"]
-    assert r.get_json()["scores"]["mse"] == expected["mse"]
+    assert full_mse(r) == expected["mse"]
     lines = ["id," + ",".join(f"pred.s{k}" for k in range(3))]
     for i, row_id in enumerate(body["ids"]):
         lines.append(row_id + "," + ",".join(repr(seed[i]) for seed in body["predictions"]))
@@ -446,7 +469,7 @@ def test_parquet_and_csv_submissions_score_like_json(
         content_type="multipart/form-data",
     )
     assert r.status_code == 201, r.get_json()
-    assert r.get_json()["scores"]["mse"] == expected["mse"]
+    assert full_mse(r) == expected["mse"]
     assert r.get_json()["sweep"] == {"name": "d", "complexity": 2.0}
 
 
