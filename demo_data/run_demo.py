@@ -3,8 +3,9 @@
 The ferry operator's owner registers the sealed holdout of crossing times; two modelling
 groups submit bootstrap-trained models (five fits each) with their training-set predictions,
 one of them a sweep over tree depth. For each submission the script prints the headline
-scores with intervals, the bias-variance split and the overfitting flags; then the sweep with
-its minimum and one-standard-error choice, and the standings.
+scores with intervals, the bias-variance split and the overfitting flags as the group sees
+them (the feedback slice, through the holdout's reuse guard); then the sweep with its minimum
+and one-standard-error choice as the owner sees it, and the standings.
 
 Usage: python demo_data/run_demo.py BASE_URL OWNER_TOKEN SUBMITTER_TOKEN_A SUBMITTER_TOKEN_B
 """
@@ -52,6 +53,9 @@ def print_submission(result: dict[str, Any]) -> None:
         f"   (variance share {fmt(decomposition['variance_share'], 2)}; averaging the seeds "
         f"gives {fmt(decomposition['ensemble_loss'])})"
     )
+    guard = result.get("guard") or {}
+    if guard.get("message"):
+        print(f"   reuse guard ({guard.get('kind')}): {guard['message']}")
     for flag in result["flags"]:
         print(f"   [{flag['severity']}] {flag['code']}: {flag['message']}")
     if not result["flags"]:
@@ -97,8 +101,18 @@ def main(base: str, owner: str, group_a: str, group_b: str) -> None:
     for entry in sweep:
         submit(group_b, entry, sweep_name="tree-depth")
 
-    curve = call("GET", f"{base}/v1/holdouts/{holdout_id}/sweeps/tree-depth", group_b)
-    print(f"\n== Sweep 'tree-depth' of group {curve['group']}: {curve['loss']} loss against depth")
+    # The owner's view: every sweep point on all rows. (A submitter sees the feedback slice,
+    # and under the Ladder only the points it accepted as improvements.)
+    curve = call(
+        "GET",
+        f"{base}/v1/holdouts/{holdout_id}/sweeps/tree-depth",
+        owner,
+        params={"group": "tide-lab"},
+    )
+    print(
+        f"\n== Sweep 'tree-depth' of group {curve['group']} (owner's view, all rows): "
+        f"{curve['loss']} loss against depth"
+    )
     print(f"   {'depth':>6} {'test':>8} {'+-se':>7} {'train':>8} {'bias':>8} {'var':>7}  region")
     for point in curve["points"]:
         print(
