@@ -299,6 +299,9 @@ def test_problems_arrive_as_heldout_errors(server, clients, holdout, data, monke
         clients["submitter"].submission("no-such-submission")
     assert info.value.status == 404
 
+    whole = server["tmp"] / "whole.parquet"  # this test's own accepted submission, so the
+    pq.write_table(pa.table({"id": ids, "pred": held[0]}), whole)  # listing below never
+    clients["submitter"].submit(holdout["id"], [whole], model="whole")  # depends on test order
     monkeypatch.setenv("HELDOUT_URL", server["base"])
     monkeypatch.setenv("HELDOUT_TOKEN", server["tokens"]["submitter"])
     with HeldoutClient.from_env() as from_env:
