@@ -287,19 +287,28 @@ def _fast_order_ascii(
     keys.sort()
     kh, cached = _holdout_sorted_keys(_code_units(h), bits, owner)
 
+    def differing(got: NDArray[np.uint8], want: NDArray[np.uint32]) -> NDArray[np.bool_]:
+        """Rows of ``got`` (bytes) that differ from ``want`` (the holdout's code units)."""
+        bad = ~(got == want[:, :length]).all(axis=1)
+        if length < width:
+            bad |= want[:, length:].any(axis=1)
+        return bad
+
     def same_rows(order: NDArray[np.intp], rows: NDArray[np.intp] | None) -> NDArray[np.intp]:
-        chunks = [rows] if rows is not None else [
-            np.arange(start, min(n, start + _CHUNK_ROWS)) for start in range(0, n, _CHUNK_ROWS)
-        ]
+        if rows is not None:
+            return rows[differing(np.take(sb, order[rows], axis=0), h32[rows])]
         bad: list[NDArray[np.intp]] = []
-        for pos in chunks:  # chunks stay in cache
-            got = np.take(sb, order[pos], axis=0)
-            want = h32[pos[0] : pos[-1] + 1] if rows is None else h32[pos]
-            ok = (got == want[:, :length]).all(axis=1)
-            if length < width:
-                ok &= ~want[:, length:].any(axis=1)
-            if not ok.all():
-                bad.append(pos[~ok])
+        for start in range(0, n, _CHUNK_ROWS):  # chunks stay in cache
+            stop = min(n, start + _CHUNK_ROWS)
+            got = np.take(sb, order[start:stop], axis=0).astype(np.uint32)
+            want = h32[start:stop]
+            # The common case, every row equal, by one memory comparison.
+            if length == width and got.tobytes() == want.tobytes():
+                continue
+            if length < width and got.tobytes() == want[:, :length].tobytes() \
+                    and not want[:, length:].any():
+                continue
+            bad.append(start + np.flatnonzero(differing(got.astype(np.uint8), want)))
         return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)
 
     def texts(rows: NDArray[np.intp]) -> list[str]:
