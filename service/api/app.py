@@ -36,10 +36,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         settings["DATABASE_URL"], label_cache_size=settings["LABEL_CACHE_SIZE"]
     )
 
-    from . import docs, guarding, health, holdouts, submissions
+    from . import docs, guarding, health, holdouts, submissions, timing
     from .errors import register_error_handlers
 
     register_error_handlers(app)
+    timing.install(app)
     for module in (health, holdouts, submissions, guarding, docs):
         app.register_blueprint(module.bp)
 

@@ -32,7 +32,7 @@ from collections.abc import Mapping
 from typing import Any
 
 import orjson
-from flask import Flask, Response
+from flask import Flask, Response, request
 from marshmallow import ValidationError
 from sqlalchemy.exc import OperationalError
 from werkzeug.exceptions import HTTPException
@@ -236,16 +236,27 @@ def register_error_handlers(app: Flask) -> None:
     def _http_error(exc: HTTPException) -> Response:
         status = exc.code or 500
         headers = {}
+        errors = []
         if status == 405 and getattr(exc, "valid_methods", None):
             headers["Allow"] = ", ".join(exc.valid_methods)
         if status == 413:
+            limit = app.config["MAX_BODY_BYTES"]
             detail = (
                 f"The request body is larger than the configured limit of "
-                f"{app.config['MAX_BODY_BYTES']} bytes (HELDOUT_MAX_BODY_BYTES)."
+                f"{limit} bytes (HELDOUT_MAX_BODY_BYTES)."
+            )
+            sent = request.content_length
+            errors.append(
+                problem_error(
+                    "body",
+                    f"more than the limit of {limit} bytes",
+                    1,
+                    [] if sent is None else [f"Content-Length: {sent}"],
+                )
             )
         else:
             detail = exc.description or exc.name
-        return problem_response(status, detail, headers=headers)
+        return problem_response(status, detail, errors, headers=headers)
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception) -> Response:

@@ -247,18 +247,20 @@ def from_table(
     limits: Limits,
 ) -> SubmissionInput:
     """Convert a CSV/Parquet submission (column layout in ``service.ingest.tables``)."""
+    # Rows come back in holdout order: each column is gathered once into place.
     parsed = submission_from_table(
-        table, task=catalog.kind(holdout.task), classes=holdout.classes, limits=limits
+        table,
+        task=catalog.kind(holdout.task),
+        classes=holdout.classes,
+        limits=limits,
+        holdout_ids=arrays.ids,
     )
     _check_kinds(
         holdout,
         parsed.predictions is not None or parsed.labels is not None,
         parsed.probabilities is not None,
     )
-    order = align_ids(arrays.ids, parsed.ids, field="id")
-    predictions = None if parsed.predictions is None else parsed.predictions[:, order]
-    labels = None if parsed.labels is None else parsed.labels[:, order]
-    probabilities = None if parsed.probabilities is None else parsed.probabilities[:, order, :]
+    predictions, labels, probabilities = parsed.predictions, parsed.labels, parsed.probabilities
     n_seeds = _seed_count(predictions, labels, probabilities, field="columns")
     sweep = None
     if fields.get("sweep_name") is not None:

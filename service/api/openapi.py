@@ -74,6 +74,8 @@ def operation(
     response: tuple[int, Any] = (200, None),
     alternatives: Mapping[int, tuple[str, Any]] | None = None,
     errors: tuple[int, ...] = (),
+    headers: tuple[Mapping[str, Any], ...] = (),
+    response_headers: Mapping[str, Mapping[str, Any]] | None = None,
 ) -> Callable[[F], F]:
     """Attach the OpenAPI description of one view.
 
@@ -81,7 +83,8 @@ def operation(
     success status and its schema class, or a mapping of media type to schema for content
     negotiation; ``alternatives`` other success statuses as (description, schema), e.g.
     200 for an idempotent repeat; ``errors`` the problem statuses besides the 401/403 that
-    ``requires`` implies.
+    ``requires`` implies; ``headers`` request header parameters (OpenAPI Parameter objects
+    without ``in``); ``response_headers`` the success response's headers (Header objects).
     """
 
     def decorate(view: F) -> F:
@@ -97,6 +100,8 @@ def operation(
                 "response": response,
                 "alternatives": dict(alternatives or {}),
                 "errors": errors,
+                "headers": tuple(headers),
+                "response_headers": dict(response_headers or {}),
             },
         )
         return view
@@ -161,10 +166,13 @@ def build_spec(app: Flask) -> dict[str, Any]:
         ]
         if doc["query"] is not None:
             parameters.append({"in": "query", "schema": doc["query"]})
+        parameters.extend({"in": "header", **header} for header in doc["headers"])
         status, response_schema = doc["response"]
         responses: dict[str, Any] = {
             str(status): {"description": _STATUS_TEXT[status], "content": _content(response_schema)}
         }
+        if doc["response_headers"]:
+            responses[str(status)]["headers"] = doc["response_headers"]
         for alt_status, (alt_text, alt_schema) in doc["alternatives"].items():
             responses[str(alt_status)] = {
                 "description": alt_text,

@@ -8,22 +8,29 @@ from flask import Blueprint, Response, current_app, url_for
 
 from service.scoring import ScoringInputError, catalog
 from service.scoring.sweep import SweepInput, complexity_sweep
-from service.store import HoldoutRecord, NewSubmission
+from service.store import HoldoutRecord, NewSubmission, Store, SubmissionRecord
+from service.store.reuse import GuardRecord
 
-from . import evaluate, guarding
-from .auth import current_principal, get_store, requires, visible_holdout, visible_submission
+from . import evaluate, guarding, idempotency
+from .auth import (
+    Principal,
+    current_principal,
+    get_store,
+    requires,
+    visible_holdout,
+    visible_submission,
+)
 from .bodies import (
     CSV,
     JSON,
     MULTIPART,
     PARQUET,
-    body_media_type,
     json_envelope,
     limits,
-    multipart_upload,
     parse_table,
     query_fields,
-    raw_body,
+    read_body,
+    release_table_memory,
 )
 from .errors import NotFound, ValidationFailed, problem_error
 from .openapi import operation
@@ -39,6 +46,7 @@ from .schemas import (
     SweepOut,
     SweepQuery,
 )
+from .timing import mark
 
 bp = Blueprint("submissions", __name__)
 
@@ -59,7 +67,28 @@ Predictions for every row of the holdout, each id exactly once in any order.
 The response holds the scores of the holdout's feedback slice as its guard reports them
 (`guard`; see the holdout's policy), never anything computed on the sealed reserve rows
 before the holdout is closed, and never a label, a per-row loss or a per-row residual.
-A closed holdout answers 409; a group over its daily quota 429 with `Retry-After`."""
+A closed holdout answers 409; a group over its daily quota 429 with `Retry-After`.
+
+Large submissions: send Parquet (several times faster than CSV to upload and parse, and far
+faster than JSON). Retries: send an `Idempotency-Key`; a retry with the same key and the
+same request returns the first result (201, same id, `Idempotent-Replayed: true`) and
+stores and counts nothing; the same key with another request is 422."""
+
+_IDEMPOTENCY_KEY = {
+    "name": "Idempotency-Key",
+    "required": False,
+    "description": "A key unique to this request, chosen by the client (an RFC 8941 String "
+    "such as \"4f8d...\", or the bare text): 1-255 printable ASCII characters. Scoped to the "
+    "token's group and the holdout; kept while the holdout exists.",
+    "schema": {"type": "string", "minLength": 1, "maxLength": 257},
+}
+_CREATED_HEADERS = {
+    "Location": {"description": "The submission's URL.", "schema": {"type": "string"}},
+    "Idempotent-Replayed": {
+        "description": "`true` when this answers a retry with a stored result.",
+        "schema": {"type": "string", "enum": ["true"]},
+    },
+}
 
 
 @bp.post("/v1/holdouts/<holdout_id>/submissions")
@@ -77,52 +106,85 @@ A closed holdout answers 409; a group over its daily quota 429 with `Retry-After
     query=SubmissionUploadQuery(partial=True),
     response=(201, SubmissionResult),
     errors=(400, 404, 409, 413, 415, 422, 429),
+    headers=(_IDEMPOTENCY_KEY,),
+    response_headers=_CREATED_HEADERS,
 )
 def create_submission(holdout_id: str) -> Response:
     principal = current_principal()
     holdout = visible_holdout(principal, holdout_id)
     store = get_store()
     assert principal.group is not None
+    received = read_body(SubmissionUploadQuery())
+    key = idempotency.request_key(received)
+    if key is not None:  # a retry of a stored request: its result, nothing scored or counted
+        first = idempotency.stored_submission(store, holdout.id, principal.group, key)
+        if first is not None:
+            return _created(store, first, holdout, principal, replayed=True)
     guarding.check_can_submit(store, holdout, principal.group)
     arrays = store.holdout_arrays(holdout.id)
-    media = body_media_type()
     lim = limits()
-    if media == JSON:
-        sub = evaluate.from_json(json_envelope(SubmissionCreate()), holdout, arrays, lim)
+    # take(): a large body is freed once parsed, the table once converted (before scoring).
+    if received.media_type == JSON:
+        envelope = json_envelope(SubmissionCreate(), received.take())
+        mark("parse")
+        sub = evaluate.from_json(envelope, holdout, arrays, lim)
+        del envelope
     else:
-        if media == MULTIPART:
-            upload = multipart_upload(SubmissionUploadQuery())
-            fields, raw, table_type = upload.fields, upload.data, upload.media_type
-        else:
-            fields, raw, table_type = query_fields(SubmissionUploadQuery()), raw_body(), media
-        table = parse_table(raw, table_type, task=catalog.kind(holdout.task))
-        sub = evaluate.from_table(fields, table, holdout, arrays, lim)
+        table = parse_table(received.take(), received.media_type, task=catalog.kind(holdout.task))
+        mark("parse")
+        sub = evaluate.from_table(received.fields, table, holdout, arrays, lim)
+        del table
+        release_table_memory()
+    mark("convert_align")  # Server-Timing phases (timing.py)
     options = evaluate.options_from(current_app.config)
     result, slices = guarding.score_slices(holdout, arrays, sub, options)
-    record, guard = guarding.store_submission(
-        store,
-        holdout,
-        arrays,
-        NewSubmission(
-            holdout_id=holdout.id,
-            group=principal.group,
-            token_id=principal.token.id,
-            model=sub.model,
-            seeds=sub.seeds,
-            sweep_name=None if sub.sweep is None else sub.sweep[0],
-            sweep_complexity=None if sub.sweep is None else sub.sweep[1],
-            primary_metric=holdout.policy["primary_metric"],
-            primary_value=result.primary_value,
-            report=result.report,
-            row_loss=result.row_loss,
-            row_losses=result.row_losses,
-        ),
-        result,
-        slices,
+    mark("score")
+    new = NewSubmission(
+        holdout_id=holdout.id,
+        group=principal.group,
+        token_id=principal.token.id,
+        model=sub.model,
+        seeds=sub.seeds,
+        sweep_name=None if sub.sweep is None else sub.sweep[0],
+        sweep_complexity=None if sub.sweep is None else sub.sweep[1],
+        primary_metric=holdout.policy["primary_metric"],
+        primary_value=result.primary_value,
+        report=result.report,
+        row_loss=result.row_loss,
+        row_losses=result.row_losses,
+        idempotency_key=None if key is None else key.key,
+        request_digest=None if key is None else key.digest,
     )
-    location = url_for("submissions.get_submission", submission_id=record.id)
+    try:
+        record, guard = guarding.store_submission(store, holdout, arrays, new, result, slices)
+    except Exception:
+        # Nothing was stored. If a concurrent request with this key stored its own (the key's
+        # unique constraint refused ours, or it took the last quota slot), answer with it.
+        first = None
+        if key is not None:
+            first = idempotency.stored_submission(store, holdout.id, principal.group, key)
+        if first is None:
+            raise
+        return _created(store, first, holdout, principal, replayed=True)
+    mark("store")
+    return _created(store, record, holdout, principal, guard=guard)
+
+
+def _created(
+    store: Store,
+    record: SubmissionRecord,
+    holdout: HoldoutRecord,
+    principal: Principal,
+    *,
+    guard: GuardRecord | None = None,
+    replayed: bool = False,
+) -> Response:
+    """201 with the submission as ``principal`` sees it (the first answer, or its replay)."""
+    headers = {"Location": url_for("submissions.get_submission", submission_id=record.id)}
+    if replayed:
+        headers[idempotency.REPLAYED_HEADER] = "true"
     view = guarding.submission_view(store, record, holdout, principal, guard)
-    return respond(SubmissionResult(), view, 201, {"Location": location})
+    return respond(SubmissionResult(), view, 201, headers)
 
 
 @bp.get("/v1/submissions/<submission_id>")

@@ -144,9 +144,27 @@ group_states = Table(
     Column("n_improvements", Integer, nullable=False),
 )
 
+idempotency_keys = Table(
+    "idempotency_keys",
+    metadata,
+    # One row per Idempotency-Key a group used on a holdout, written in the transaction that
+    # stores the submission it created: a retry finds that submission here, and two requests
+    # racing with one key cannot both store one (the unique constraint refuses the second).
+    Column("submission_id", String(32), ForeignKey("submissions.id"), primary_key=True),
+    Column("holdout_id", String(32), ForeignKey("holdouts.id"), nullable=False),
+    Column("group_name", String(64), nullable=False),
+    Column("key", String(255), nullable=False),
+    # SHA-256 (hex) of the request as the service read it: media type, form or query fields,
+    # body bytes after Content-Encoding. The same key with another request is refused.
+    Column("request_digest", String(64), nullable=False),
+    Column("created_at", DateTime(timezone=True), nullable=False),
+    UniqueConstraint("holdout_id", "group_name", "key", name="uq_idempotency_keys_scope"),
+)
+
 __all__ = [
     "group_states",
     "holdout_data",
+    "idempotency_keys",
     "holdouts",
     "metadata",
     "submission_data",

@@ -177,6 +177,10 @@ class NewSubmission:
     report: dict[str, Any]
     row_loss: str
     row_losses: NDArray[np.float64]  # (n,) in holdout row order
+    # The client's Idempotency-Key and the digest of its request, stored with the submission
+    # (schema.idempotency_keys); None when the request carried no key.
+    idempotency_key: str | None = None
+    request_digest: str | None = None
 
 
 @dataclass(frozen=True)
@@ -522,6 +526,18 @@ class Store:
                 row_losses=encode_array(np.asarray(new.row_losses, dtype=np.float64)),
             )
         )
+        if new.idempotency_key is not None:
+            # In the same transaction: a key already taken (a concurrent retry) rolls it all back.
+            conn.execute(
+                schema.idempotency_keys.insert().values(
+                    submission_id=record.id,
+                    holdout_id=record.holdout_id,
+                    group_name=record.group,
+                    key=new.idempotency_key,
+                    request_digest=new.request_digest,
+                    created_at=record.created_at,
+                )
+            )
         return record
 
     def get_submission(self, submission_id: str) -> SubmissionRecord | None:
