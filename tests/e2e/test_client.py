@@ -12,14 +12,7 @@ from __future__ import annotations
 
 import gzip
 import math
-import os
-import signal
-import socket
-import subprocess
-import sys
-import time
 from collections.abc import Iterator
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -28,7 +21,7 @@ import pyarrow as pa
 import pyarrow.csv  # noqa: F401 (pa.csv.write_csv)
 import pyarrow.parquet as pq
 import pytest
-import requests
+from gunicorn_server import free_port, running_gunicorn
 from sklearn.datasets import load_breast_cancer, load_diabetes
 from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 from sklearn.metrics import accuracy_score, log_loss, mean_squared_error
@@ -36,7 +29,6 @@ from sklearn.model_selection import train_test_split
 from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 
-from service.cli import gunicorn_argv
 from service.client import HeldoutClient, HeldoutConnectionError, HeldoutError
 from service.scoring import (
     ScoringOptions,
@@ -47,26 +39,15 @@ from service.scoring import (
 from service.scoring.split import feedback_mask
 from service.store import Store
 
-BIN = Path(sys.executable).parent
-START_TIMEOUT = 60.0
 RESAMPLES = 200  # the server's bootstrap resamples (HELDOUT_BOOTSTRAP_RESAMPLES)
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]:
     """One gunicorn server for the module, with an owner and a submitter token."""
     tmp = tmp_path_factory.mktemp("client-server")
-    port = _free_port()
-    env = {
-        **os.environ,
+    settings = {
         "HELDOUT_DATABASE_URL": f"sqlite:///{tmp / 'heldout.sqlite3'}",
-        "HELDOUT_BIND": f"127.0.0.1:{port}",
         "HELDOUT_WORKERS": "2",
         "HELDOUT_BOOTSTRAP_RESAMPLES": str(RESAMPLES),
     }
@@ -74,7 +55,7 @@ def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]
     # Tokens through the store, as `heldout tokens create` makes them (that command itself
     # is tested in tests/api/test_cli.py and test_gunicorn.py); in-process to save two
     # interpreter starts.
-    store = Store(env["HELDOUT_DATABASE_URL"])
+    store = Store(settings["HELDOUT_DATABASE_URL"])
     try:
         store.init_schema()
         tokens = {
@@ -83,35 +64,8 @@ def server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[dict[str, Any]]
         }
     finally:
         store.dispose()
-    log = tmp / "gunicorn.log"
-    argv = gunicorn_argv()
-    argv[0] = str(BIN / argv[0])
-    with log.open("wb") as sink:
-        proc = subprocess.Popen(
-            argv, env=env, stdout=sink, stderr=subprocess.STDOUT, cwd=tmp,
-            start_new_session=True,
-        )
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + START_TIMEOUT
-        while True:
-            assert proc.poll() is None, log.read_text()
-            try:
-                if requests.get(f"{base}/readyz", timeout=5).status_code == 200:
-                    break
-            except (requests.ConnectionError, requests.Timeout):  # still booting
-                pass
-            assert time.monotonic() < deadline, "gunicorn did not become ready"
-            time.sleep(0.2)
-        yield {"base": base, "tokens": tokens, "tmp": tmp}
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
+    with running_gunicorn(tmp, settings) as running:
+        yield {"base": running.base, "tokens": tokens, "tmp": tmp}
 
 
 @pytest.fixture(scope="module")
@@ -312,7 +266,7 @@ def test_problems_arrive_as_heldout_errors(server, clients, holdout, data, monke
         HeldoutClient.from_env()
 
     with pytest.raises(HeldoutConnectionError) as info:
-        HeldoutClient(f"http://127.0.0.1:{_free_port()}", "x", timeout=5).holdouts()
+        HeldoutClient(f"http://127.0.0.1:{free_port()}", "x", timeout=5).holdouts()
     assert info.value.status == 0 and isinstance(info.value, HeldoutError)
 
     other = server["tmp"] / "other.parquet"  # per-seed files with different ids

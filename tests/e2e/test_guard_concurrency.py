@@ -13,12 +13,6 @@ on PostgreSQL. Checks (RFC 6585 for 429 with Retry-After; Blum & Hardt 2015 for 
 
 from __future__ import annotations
 
-import os
-import signal
-import socket
-import subprocess
-import sys
-import time
 from collections.abc import Iterator
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -28,20 +22,12 @@ import numpy as np
 import pytest
 import requests
 import sqlalchemy as sa
+from gunicorn_server import running_gunicorn
 
-from service.cli import gunicorn_argv
 from service.store import Store, schema
 
-BIN = Path(sys.executable).parent
-START_TIMEOUT = 60.0
 QUOTA = 3
 N_ROWS = 120
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 @pytest.fixture
@@ -52,47 +38,15 @@ def server(database_url: str, tmp_path: Path) -> Iterator[dict[str, Any]]:
         "owner": store.create_token("owner", "lab")[1],
         "submitter": store.create_token("submitter", "g1")[1],
     }
-    port = _free_port()
-    env = {
-        **os.environ,
+    settings = {
         "HELDOUT_DATABASE_URL": database_url,
-        "HELDOUT_BIND": f"127.0.0.1:{port}",
         "HELDOUT_WORKERS": "3",
         "HELDOUT_BOOTSTRAP_RESAMPLES": "100",
     }
-    log = tmp_path / "gunicorn.log"
-    argv = gunicorn_argv()
-    argv[0] = str(BIN / argv[0])
-    with log.open("wb") as sink:
-        proc = subprocess.Popen(
-            argv,
-            env=env,
-            stdout=sink,
-            stderr=subprocess.STDOUT,
-            cwd=tmp_path,
-            start_new_session=True,
-        )
-    base = f"http://127.0.0.1:{port}"
     try:
-        deadline = time.monotonic() + START_TIMEOUT
-        while True:
-            assert proc.poll() is None, log.read_text()
-            try:
-                if requests.get(f"{base}/readyz", timeout=5).status_code == 200:
-                    break
-            except (requests.ConnectionError, requests.Timeout):  # still booting
-                pass
-            assert time.monotonic() < deadline, "gunicorn did not become ready"
-            time.sleep(0.2)
-        yield {"base": base, "tokens": tokens, "store": store, "log": log}
+        with running_gunicorn(tmp_path, settings) as running:
+            yield {"base": running.base, "tokens": tokens, "store": store, "log": running.log}
     finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
         store.dispose()
 
 

@@ -9,11 +9,7 @@ from __future__ import annotations
 
 import gzip
 import os
-import signal
-import socket
 import subprocess
-import sys
-import time
 from collections.abc import Iterator
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -23,29 +19,17 @@ import numpy as np
 import orjson
 import pytest
 import requests
-
-from service.cli import gunicorn_argv
-
-BIN = Path(sys.executable).parent
-START_TIMEOUT = 60.0
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
+from gunicorn_server import BIN, running_gunicorn
 
 
 @pytest.fixture
 def server(tmp_path: Path) -> Iterator[dict[str, Any]]:
-    port = _free_port()
-    env = {
-        **os.environ,
+    settings = {
         "HELDOUT_DATABASE_URL": f"sqlite:///{tmp_path / 'heldout.sqlite3'}",
-        "HELDOUT_BIND": f"127.0.0.1:{port}",
         "HELDOUT_WORKERS": "2",
         "HELDOUT_BOOTSTRAP_RESAMPLES": "200",
     }
+    env = {**os.environ, **settings}
 
     def token(role: str, group: str | None = None) -> str:
         argv = [str(BIN / "heldout"), "tokens", "create", "--role", role]
@@ -55,39 +39,8 @@ def server(tmp_path: Path) -> Iterator[dict[str, Any]]:
         return done.stdout.strip()
 
     tokens = {"owner": token("owner", "lab"), "submitter": token("submitter", "g1")}
-    log = tmp_path / "gunicorn.log"
-    argv = gunicorn_argv()
-    argv[0] = str(BIN / argv[0])
-    with log.open("wb") as sink:
-        proc = subprocess.Popen(
-            argv,
-            env=env,
-            stdout=sink,
-            stderr=subprocess.STDOUT,
-            cwd=tmp_path,
-            start_new_session=True,
-        )
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + START_TIMEOUT
-        while True:
-            assert proc.poll() is None, log.read_text()
-            try:
-                if requests.get(f"{base}/readyz", timeout=5).status_code == 200:
-                    break
-            except (requests.ConnectionError, requests.Timeout):  # still booting
-                pass
-            assert time.monotonic() < deadline, "gunicorn did not become ready"
-            time.sleep(0.2)
-        yield {"base": base, "tokens": tokens, "log": log, "proc": proc}
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
+    with running_gunicorn(tmp_path, settings) as running:
+        yield {"base": running.base, "tokens": tokens, "log": running.log, "proc": running.proc}
 
 
 def test_register_and_submit_through_gunicorn(server: dict[str, Any]) -> None:

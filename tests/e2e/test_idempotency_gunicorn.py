@@ -9,13 +9,7 @@ bounded.
 
 from __future__ import annotations
 
-import os
-import signal
-import socket
-import subprocess
-import sys
 import threading
-import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -24,18 +18,9 @@ import numpy as np
 import orjson
 import pytest
 import requests
+from gunicorn_server import running_gunicorn
 
-from service.cli import gunicorn_argv
 from service.store import Store, make_engine, schema
-
-BIN = Path(sys.executable).parent
-START_TIMEOUT = 60.0
-
-
-def _free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
 
 
 @pytest.fixture
@@ -52,41 +37,13 @@ def pg_server(postgres_url: str, tmp_path: Path) -> Iterator[dict[str, Any]]:
         "submitter": store.create_token("submitter", "g1")[1],
     }
     store.dispose()
-    port = _free_port()
-    env = {
-        **os.environ,
+    settings = {
         "HELDOUT_DATABASE_URL": postgres_url,
-        "HELDOUT_BIND": f"127.0.0.1:{port}",
         "HELDOUT_WORKERS": "2",
         "HELDOUT_BOOTSTRAP_RESAMPLES": "200",
     }
-    argv = gunicorn_argv()
-    argv[0] = str(BIN / argv[0])
-    log = tmp_path / "gunicorn.log"
-    with log.open("wb") as sink:
-        proc = subprocess.Popen(argv, env=env, stdout=sink, stderr=subprocess.STDOUT,
-                                cwd=tmp_path, start_new_session=True)
-    base = f"http://127.0.0.1:{port}"
-    try:
-        deadline = time.monotonic() + START_TIMEOUT
-        while True:
-            assert proc.poll() is None, log.read_text()
-            try:
-                if requests.get(f"{base}/readyz", timeout=5).status_code == 200:
-                    break
-            except (requests.ConnectionError, requests.Timeout):
-                pass
-            assert time.monotonic() < deadline, "gunicorn did not become ready"
-            time.sleep(0.2)
-        yield {"base": base, "tokens": tokens, "url": postgres_url}
-    finally:
-        if proc.poll() is None:
-            os.killpg(proc.pid, signal.SIGTERM)
-            try:
-                proc.wait(timeout=30)
-            except subprocess.TimeoutExpired:
-                os.killpg(proc.pid, signal.SIGKILL)
-                proc.wait(timeout=10)
+    with running_gunicorn(tmp_path, settings) as running:
+        yield {"base": running.base, "tokens": tokens, "url": postgres_url}
 
 
 @pytest.mark.postgres
