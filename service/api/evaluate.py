@@ -28,7 +28,7 @@ from service.ingest import (
 )
 from service.scoring import ScoringOptions, catalog, to_jsonable
 from service.scoring.classification import classification_report, classification_row_losses
-from service.scoring.regression import regression_report, regression_row_losses
+from service.scoring.regression import regression_report_with_row_losses
 from service.store import HoldoutArrays, HoldoutRecord
 
 from .errors import ValidationFailed, problem_error
@@ -300,14 +300,14 @@ def evaluate(
     row_loss = metric.row_loss
     if holdout.task == catalog.REGRESSION:
         assert sub.predictions is not None
-        report = regression_report(
+        # one pass gives the report and the stored per-row losses
+        report, rows = regression_report_with_row_losses(
             arrays.labels,
             sub.predictions,
             train_y_true=None if sub.train is None else sub.train.y_true,
             train_predictions=None if sub.train is None else sub.train.predictions,
             options=options,
         )
-        rows = regression_row_losses(arrays.labels, sub.predictions)
     else:
         n_classes = len(holdout.classes or [])
         report = classification_report(
