@@ -143,8 +143,10 @@ class _HoldoutKeys:
             self.entries.move_to_end(id(arr))
             return entry[2]
 
-    def put(self, arr: NDArray[Any], keys: NDArray[np.uint64]) -> None:
-        keys.flags.writeable = False
+    def put(self, arr: NDArray[Any], keys: Any) -> None:
+        for part in keys if isinstance(keys, tuple) else (keys,):
+            if isinstance(part, np.ndarray):
+                part.flags.writeable = False
         try:
             ref = weakref.ref(arr)
         except TypeError:
@@ -161,6 +163,8 @@ class _HoldoutKeys:
 
 
 _holdout_keys = _HoldoutKeys()
+# For ASCII holdouts aligned to Arrow text: (sorted byte-hash keys, longest id in bytes).
+_holdout_byte_keys = _HoldoutKeys()
 
 
 def _sorted_keys(units: NDArray[Any], bits: int) -> NDArray[np.uint64]:
@@ -219,79 +223,113 @@ def _fast_order(
     return order
 
 
-def _byte_multipliers(h: NDArray[np.str_], length: int) -> NDArray[np.uint64]:
-    """Multipliers that hash an ASCII byte row exactly as ``_row_hash`` hashes its text in
-    ``h``'s layout: a word of two UTF-32 units (a, b) is a + b * 2**32, so its multiplier r
-    becomes r for byte a and r * 2**32 for byte b (mod 2**64)."""
-    width = h.dtype.itemsize // 4
-    if h.dtype.itemsize % 8:
-        return _multipliers(width)[:length]
-    r = _multipliers(width // 2)
-    out = np.empty(2 * r.size, dtype=np.uint64)
-    out[0::2] = r
-    out[1::2] = r << np.uint64(32)
-    return out[:length]
+def _byte_row_hash(rows: NDArray[np.uint8]) -> NDArray[np.uint64]:
+    """64-bit hash per row of an (n, P) byte matrix, P a multiple of 8: a random linear
+    combination (mod 2**64) of the row's P/8 little-endian words, like ``_row_hash`` on
+    text. Zero padding adds nothing."""
+    words = rows.view("<u8")
+    return np.einsum("ij,j->i", words, _multipliers(words.shape[1]))
 
 
-def _byte_row_hash(rows: NDArray[np.uint8], multipliers: NDArray[np.uint64]) -> NDArray[np.uint64]:
-    """``_row_hash`` of ASCII text given as (n, L) bytes, in cache-sized chunks (einsum
-    widens each chunk's bytes to uint64 on the fly; no (n, L) uint64 copy is made)."""
-    n = rows.shape[0]
-    out = np.empty(n, dtype=np.uint64)
-    for start in range(0, n, _CHUNK_ROWS):
-        stop = min(n, start + _CHUNK_ROWS)
-        out[start:stop] = np.einsum("ij,j->i", rows[start:stop], multipliers)
-    return out
+def _padded_rows(data: NDArray[np.uint8], lengths: NDArray[Any], width: int) -> NDArray[np.uint8]:
+    """Entries of lengths ``lengths`` packed in ``data``, as NUL-padded rows of ``width``
+    bytes (a multiple of 8, so a row is whole 64-bit words)."""
+    n = lengths.size
+    longest = int(lengths.max()) if n else 0
+    if n and longest and (lengths == longest).all():
+        if longest == width:
+            return data.reshape(n, width)
+        rows = np.zeros((n, width), dtype=np.uint8)
+        rows[:, :longest] = data.reshape(n, longest)  # one strided copy
+        return rows
+    rows = np.zeros((n, width), dtype=np.uint8)
+    rows[np.arange(width) < lengths[:, None]] = data
+    return rows
 
 
-def _ascii_rows(arr: pa.Array) -> NDArray[np.uint8] | None:
-    """An ASCII, NUL-free Arrow string array as an (n, L) byte matrix padded with NUL to its
-    longest entry (a zero-copy view when every entry has L bytes); None for other text."""
+def _ascii_rows(arr: pa.Array) -> tuple[NDArray[np.uint8], int] | None:
+    """An ASCII, NUL-free Arrow string array as NUL-padded byte rows, whole 64-bit words
+    wide, and its longest entry in bytes; None for other text."""
     offsets, data = _string_buffers(arr)
     if data.size == 0 or int(data.max()) >= 128 or not data.all():
         return None
     lengths = np.diff(offsets)
     longest = int(lengths.max())
-    if (lengths == longest).all():
-        return data.reshape(lengths.size, longest)
-    rows = np.zeros((lengths.size, longest), dtype=np.uint8)
-    rows[np.arange(longest) < lengths[:, None]] = data
-    return rows
+    return _padded_rows(data, lengths, -(-longest // 8) * 8), longest
+
+
+def _holdout_ascii_keys(
+    h: NDArray[np.str_], bits: int, owner: NDArray[Any] | None
+) -> tuple[NDArray[np.uint64], int, bool] | None:
+    """Sorted byte-hash keys of an ASCII holdout, its longest id in bytes, and whether they
+    came from the cache; None when some holdout id is not ASCII."""
+    cached = _holdout_byte_keys.get(owner) if owner is not None else None
+    if cached is not None:
+        keys, longest = cached
+        return keys, int(longest), True
+    n = h.size
+    units = h.view(np.uint32).reshape(n, h.dtype.itemsize // 4)
+    column_max = units.max(axis=0)  # one pass: ASCII or not, and the longest id
+    if int(column_max.max()) >= 128:
+        return None
+    used = np.flatnonzero(column_max)
+    longest = int(used[-1]) + 1 if used.size else 0
+    if longest == 0:
+        return None
+    width = -(-longest // 8) * 8
+    rows = np.zeros((n, width), dtype=np.uint8)
+    rows[:, :longest] = units[:, :longest]
+    low = np.uint64((1 << bits) - 1)
+    keys = _byte_row_hash(rows)
+    del rows
+    keys &= ~low
+    keys |= np.arange(n, dtype=np.uint64)
+    keys.sort()
+    if owner is not None:
+        _holdout_byte_keys.put(owner, (keys, np.int64(longest)))
+    return keys, longest, False
 
 
 def _fast_order_ascii(
     h: NDArray[np.str_], arr: pa.Array, owner: NDArray[Any] | None = None
 ) -> NDArray[np.intp] | None:
-    """``_fast_order`` for submitted ids still in Arrow form, when they are ASCII.
+    """``_fast_order`` for submitted ids still in Arrow form, when both sides are ASCII.
 
-    The ids are hashed and compared as UTF-8 bytes, (n, L) with L their longest, never
-    widened to numpy's UTF-32 (four times the memory): equal text hashes equally in
-    either form, so the holdout's keys (cached) pair with them unchanged.
+    Ids are hashed as NUL-padded UTF-8 bytes, whole 64-bit words (a 25-character id is four
+    words; as numpy's UTF-32 text it would be thirteen) and never widened to numpy text
+    (four times the memory). The holdout's byte-hash keys are kept per holdout array like
+    its text keys; every pairing is verified exactly against the holdout's text as it is.
     """
     n = h.size
     if len(arr) != n or n == 0 or arr.null_count:
         return None
-    sb = _ascii_rows(arr)
-    if sb is None:
+    ascii_rows = _ascii_rows(arr)
+    if ascii_rows is None:
         return None
-    length = sb.shape[1]
+    sb, length = ascii_rows
     width = h.dtype.itemsize // 4
     if length > width:
         return None  # some submitted id is longer than every holdout id
-    h32 = h.view(np.uint32).reshape(n, width)
     bits = max(1, (n - 1).bit_length())
-    keys = _byte_row_hash(sb, _byte_multipliers(h, length))
+    held = _holdout_ascii_keys(h, bits, owner)
+    if held is None or held[1] != length:
+        return None  # a holdout id is not ASCII, or the longest ids differ: not the same set
+    kh, _, cached = held
+    keys = _byte_row_hash(sb)
     low = np.uint64((1 << bits) - 1)
     keys &= ~low
     keys |= np.arange(n, dtype=np.uint64)
     keys.sort()
-    kh, cached = _holdout_sorted_keys(_code_units(h), bits, owner)
+    h32 = h.view(np.uint32).reshape(n, width)
+    # Compare the first `cols` columns of both sides; beyond them one side is all padding
+    # (the submitted rows past `width` hold NUL, as `length <= width`), the other is checked.
+    cols = min(sb.shape[1], width)
 
     def differing(got: NDArray[np.uint8], want: NDArray[np.uint32]) -> NDArray[np.bool_]:
         """Rows of ``got`` (bytes) that differ from ``want`` (the holdout's code units)."""
-        bad = ~(got == want[:, :length]).all(axis=1)
-        if length < width:
-            bad |= want[:, length:].any(axis=1)
+        bad = ~(got[:, :cols] == want[:, :cols]).all(axis=1)
+        if cols < width:
+            bad |= want[:, cols:].any(axis=1)
         return bad
 
     def same_rows(order: NDArray[np.intp], rows: NDArray[np.intp] | None) -> NDArray[np.intp]:
@@ -300,15 +338,15 @@ def _fast_order_ascii(
         bad: list[NDArray[np.intp]] = []
         for start in range(0, n, _CHUNK_ROWS):  # chunks stay in cache
             stop = min(n, start + _CHUNK_ROWS)
-            got = np.take(sb, order[start:stop], axis=0).astype(np.uint32)
+            got = np.take(sb, order[start:stop], axis=0)
             want = h32[start:stop]
             # The common case, every row equal, by one memory comparison.
-            if length == width and got.tobytes() == want.tobytes():
+            same = got[:, :cols].astype(np.uint32).tobytes() == (
+                want if cols == width else want[:, :cols]
+            ).tobytes()
+            if same and (cols == width or not want[:, cols:].any()):
                 continue
-            if length < width and got.tobytes() == want[:, :length].tobytes() \
-                    and not want[:, length:].any():
-                continue
-            bad.append(start + np.flatnonzero(differing(got.astype(np.uint8), want)))
+            bad.append(start + np.flatnonzero(differing(got, want)))
         return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)
 
     def texts(rows: NDArray[np.intp]) -> list[str]:
@@ -316,7 +354,7 @@ def _fast_order_ascii(
 
     order = _pair_and_verify(h, kh, keys, bits, same_rows, texts)
     if order is None and cached:
-        _holdout_keys.drop(owner)
+        _holdout_byte_keys.drop(owner)
         return _fast_order_ascii(h, arr, owner)
     return order
 

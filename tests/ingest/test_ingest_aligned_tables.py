@@ -126,7 +126,7 @@ def test_colliding_byte_hashes_never_misalign(monkeypatch, weakness: int) -> Non
     real_text, real_bytes = align_module._row_hash, align_module._byte_row_hash
     monkeypatch.setattr(align_module, "_row_hash", lambda u: real_text(u) % np.uint64(weakness))
     monkeypatch.setattr(
-        align_module, "_byte_row_hash", lambda r, m: real_bytes(r, m) % np.uint64(weakness)
+        align_module, "_byte_row_hash", lambda rows: real_bytes(rows) % np.uint64(weakness)
     )
     rng = np.random.default_rng(2)
     holdout = [f"c{i}" for i in range(400)]
@@ -137,19 +137,23 @@ def test_colliding_byte_hashes_never_misalign(monkeypatch, weakness: int) -> Non
     assert err.examples == ['"not-there"']
 
 
-def test_byte_hash_equals_the_text_hash() -> None:
-    # The property the byte path relies on: equal ids hash equally in either form.
+@pytest.mark.parametrize("dtype", ["<U40", "<U41", "<U64"])
+def test_holdout_and_submitted_bytes_hash_alike(dtype: str) -> None:
+    # The property the byte path relies on: the same ids give the same keys whether they
+    # come from the holdout's numpy text or from Arrow (then both are sorted alike).
     rng = np.random.default_rng(3)
     values = [f"id-{int(r)}" * (1 + int(r) % 3) for r in rng.integers(10**6, size=500)]
-    for dtype in ("<U40", "<U41"):
-        h = np.array(values, dtype=dtype)
-        rows = align_module._ascii_rows(pa.array(values))
-        assert rows is not None
-        from_bytes = align_module._byte_row_hash(
-            rows, align_module._byte_multipliers(h, rows.shape[1])
-        )
-        from_text = align_module._row_hash(align_module._code_units(h))
-        np.testing.assert_array_equal(from_bytes, from_text)
+    h = np.array(values, dtype=dtype)
+    bits = 9
+    held = align_module._holdout_ascii_keys(h, bits, None)
+    assert held is not None
+    keys_from_text, longest, cached = held
+    rows, length = align_module._ascii_rows(pa.array(values))
+    assert longest == length == max(map(len, values)) and not cached
+    low = np.uint64((1 << bits) - 1)
+    keys = (align_module._byte_row_hash(rows) & ~low) | np.arange(500, dtype=np.uint64)
+    np.testing.assert_array_equal(np.sort(keys), keys_from_text)
+    assert align_module._holdout_ascii_keys(np.array(["caf\u00e9", "x"]), 1, None) is None
 
 
 def test_cached_holdout_keys_serve_arrow_ids_and_are_never_trusted() -> None:
@@ -160,7 +164,7 @@ def test_cached_holdout_keys_serve_arrow_ids_and_are_never_trusted() -> None:
         submitted = [holdout[i] for i in rng.permutation(2000)]
         order = align_ids(h, pa.array(submitted))
         np.testing.assert_array_equal(order, reference_order(holdout, submitted))
-    assert align_module._holdout_keys.get(h) is not None
+    assert align_module._holdout_byte_keys.get(h) is not None
     h[0], h[1] = h[1], h[0]  # stale cached keys: the answer must still be exact
     holdout[0], holdout[1] = holdout[1], holdout[0]
     submitted = [holdout[i] for i in rng.permutation(2000)]
