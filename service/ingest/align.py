@@ -224,38 +224,43 @@ def _fast_order(
 
 
 def _byte_row_hash(rows: NDArray[np.uint8]) -> NDArray[np.uint64]:
-    """64-bit hash per row of an (n, P) byte matrix, P a multiple of 8: a random linear
-    combination (mod 2**64) of the row's P/8 little-endian words, like ``_row_hash`` on
-    text. Zero padding adds nothing."""
-    words = rows.view("<u8")
-    return np.einsum("ij,j->i", words, _multipliers(words.shape[1]))
-
-
-def _padded_rows(data: NDArray[np.uint8], lengths: NDArray[Any], width: int) -> NDArray[np.uint8]:
-    """Entries of lengths ``lengths`` packed in ``data``, as NUL-padded rows of ``width``
-    bytes (a multiple of 8, so a row is whole 64-bit words)."""
-    n = lengths.size
-    longest = int(lengths.max()) if n else 0
-    if n and longest and (lengths == longest).all():
-        if longest == width:
-            return data.reshape(n, width)
-        rows = np.zeros((n, width), dtype=np.uint8)
-        rows[:, :longest] = data.reshape(n, longest)  # one strided copy
-        return rows
-    rows = np.zeros((n, width), dtype=np.uint8)
-    rows[np.arange(width) < lengths[:, None]] = data
-    return rows
+    """64-bit hash per row of a C-contiguous (n, L) byte matrix: a random linear combination
+    (mod 2**64) of the row's whole 64-bit little-endian words and of its last L % 8 bytes,
+    like ``_row_hash`` on text. Both sides of an alignment hash rows of one length L, so
+    equal ids hash equally. The words are read in place (rows need not be 8-byte aligned),
+    a chunk of rows at a time: no copy of the matrix is made."""
+    n, length = rows.shape
+    n_words, n_tail = divmod(length, 8)
+    multipliers = _multipliers(n_words + n_tail)
+    flat = np.ascontiguousarray(rows).reshape(-1)
+    out = np.zeros(n, dtype=np.uint64)
+    for start in range(0, n, _CHUNK_ROWS):
+        stop = min(n, start + _CHUNK_ROWS)
+        if n_words:
+            words = np.ndarray((stop - start, n_words), dtype="<u8", buffer=flat,
+                               offset=start * length, strides=(length, 8))
+            out[start:stop] = np.einsum("ij,j->i", words, multipliers[:n_words])
+        if n_tail:
+            tail = rows[start:stop, 8 * n_words:]
+            out[start:stop] += np.einsum("ij,j->i", tail, multipliers[n_words:])
+    return out
 
 
 def _ascii_rows(arr: pa.Array) -> tuple[NDArray[np.uint8], int] | None:
-    """An ASCII, NUL-free Arrow string array as NUL-padded byte rows, whole 64-bit words
-    wide, and its longest entry in bytes; None for other text."""
+    """An ASCII, NUL-free Arrow string array as (n, L) NUL-padded byte rows, L its longest
+    entry (a view of Arrow's buffer when every entry has L bytes), and L; None for other
+    text."""
     offsets, data = _string_buffers(arr)
     if data.size == 0 or int(data.max()) >= 128 or not data.all():
         return None
     lengths = np.diff(offsets)
     longest = int(lengths.max())
-    return _padded_rows(data, lengths, -(-longest // 8) * 8), longest
+    n = lengths.size
+    if (lengths == longest).all():
+        return data.reshape(n, longest), longest
+    rows = np.zeros((n, longest), dtype=np.uint8)
+    rows[np.arange(longest) < lengths[:, None]] = data
+    return rows, longest
 
 
 def _holdout_ascii_keys(
@@ -276,12 +281,11 @@ def _holdout_ascii_keys(
     longest = int(used[-1]) + 1 if used.size else 0
     if longest == 0:
         return None
-    width = -(-longest // 8) * 8
-    rows = np.zeros((n, width), dtype=np.uint8)
-    rows[:, :longest] = units[:, :longest]
     low = np.uint64((1 << bits) - 1)
-    keys = _byte_row_hash(rows)
-    del rows
+    keys = np.empty(n, dtype=np.uint64)
+    for start in range(0, n, _CHUNK_ROWS):  # (rows, longest) bytes: the layout Arrow ids have
+        stop = min(n, start + _CHUNK_ROWS)
+        keys[start:stop] = _byte_row_hash(units[start:stop, :longest].astype(np.uint8))
     keys &= ~low
     keys |= np.arange(n, dtype=np.uint64)
     keys.sort()
@@ -295,10 +299,11 @@ def _fast_order_ascii(
 ) -> NDArray[np.intp] | None:
     """``_fast_order`` for submitted ids still in Arrow form, when both sides are ASCII.
 
-    Ids are hashed as NUL-padded UTF-8 bytes, whole 64-bit words (a 25-character id is four
-    words; as numpy's UTF-32 text it would be thirteen) and never widened to numpy text
-    (four times the memory). The holdout's byte-hash keys are kept per holdout array like
-    its text keys; every pairing is verified exactly against the holdout's text as it is.
+    Ids are hashed as NUL-padded UTF-8 bytes, read as 64-bit words in place (a 25-character
+    id is three words and a byte; as numpy's UTF-32 text it would be thirteen words), and
+    never widened to numpy text (four times the memory). The holdout's byte-hash keys are
+    kept per holdout array like its text keys; every pairing is verified exactly against
+    the holdout's text as it is.
     """
     n = h.size
     if len(arr) != n or n == 0 or arr.null_count:
@@ -321,9 +326,7 @@ def _fast_order_ascii(
     keys |= np.arange(n, dtype=np.uint64)
     keys.sort()
     h32 = h.view(np.uint32).reshape(n, width)
-    # Compare the first `cols` columns of both sides; beyond them one side is all padding
-    # (the submitted rows past `width` hold NUL, as `length <= width`), the other is checked.
-    cols = min(sb.shape[1], width)
+    cols = length  # <= width; the holdout's columns past it must be padding
 
     def differing(got: NDArray[np.uint8], want: NDArray[np.uint32]) -> NDArray[np.bool_]:
         """Rows of ``got`` (bytes) that differ from ``want`` (the holdout's code units)."""
@@ -340,11 +343,14 @@ def _fast_order_ascii(
             stop = min(n, start + _CHUNK_ROWS)
             got = np.take(sb, order[start:stop], axis=0)
             want = h32[start:stop]
-            # The common case, every row equal, by one memory comparison.
-            same = got[:, :cols].astype(np.uint32).tobytes() == (
-                want if cols == width else want[:, :cols]
-            ).tobytes()
-            if same and (cols == width or not want[:, cols:].any()):
+            # The common case, every row equal, by one memory comparison of bytes: exact
+            # when every holdout code unit in the chunk is below 128 (checked here, on the
+            # holdout's text as it is now) and its columns past `cols` are padding.
+            if (
+                int(want.max()) < 128
+                and (cols == width or not want[:, cols:].any())
+                and got.tobytes() == want[:, :cols].astype(np.uint8).tobytes()
+            ):
                 continue
             bad.append(start + np.flatnonzero(differing(got, want)))
         return np.concatenate(bad) if bad else np.empty(0, dtype=np.intp)

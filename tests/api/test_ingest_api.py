@@ -721,3 +721,32 @@ def test_refusals_never_quote_holdout_labels(send: Sender, send_cls: Sender) -> 
         assert 400 <= r.status_code < 500
         text = r.get_data(as_text=True)
         assert not any(label in text for label in labels)
+
+
+@pytest.mark.parametrize("fmt", ["json", "csv"])
+def test_chunked_body_over_the_size_limit_is_a_413_problem(send: Sender, fmt: str) -> None:
+    # No Content-Length (chunked transfer): werkzeug reads the body and stops at the limit.
+    data = b"x" * (LIMITS["MAX_BODY_BYTES"] + 1)
+    media = "application/json" if fmt == "json" else CSV
+    before = row_counts(send.store)
+    r = send.user.client.post(
+        f"{send.path}?model=m",
+        input_stream=io.BytesIO(data),
+        headers={"Authorization": f"Bearer {send.user.token}", "Content-Type": media},
+        environ_overrides={"wsgi.input_terminated": True, "HTTP_TRANSFER_ENCODING": "chunked"},
+    )
+    assert r.request.content_length is None
+    entry = send.refused(r, 413, "body", before)
+    assert entry["examples"] == []  # no Content-Length to show
+
+
+def test_chunked_body_within_the_limit_is_read_whole(send: Sender) -> None:
+    body = orjson.dumps(send.json_of(send.holdout.ids, predictions(send.holdout)))
+    r = send.user.client.post(
+        send.path,
+        input_stream=io.BytesIO(body),
+        headers={"Authorization": f"Bearer {send.user.token}", "Content-Type": "application/json"},
+        environ_overrides={"wsgi.input_terminated": True, "HTTP_TRANSFER_ENCODING": "chunked"},
+    )
+    assert r.request.content_length is None
+    assert r.status_code == 201, r.get_json()
