@@ -588,7 +588,10 @@ def _as_1d(ids: Any, name: str) -> NDArray[Any]:
 
 
 def align_ids(
-    holdout_ids: NDArray[Any], submitted_ids: NDArray[Any], *, field: str = "ids"
+    holdout_ids: NDArray[Any],
+    submitted_ids: NDArray[Any] | pa.Array | pa.ChunkedArray,
+    *,
+    field: str = "ids",
 ) -> NDArray[np.intp]:
     """Row order that puts a submission in holdout order: ``submitted_ids[order] == holdout_ids``.
 
