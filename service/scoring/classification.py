@@ -1115,7 +1115,8 @@ def classification_report(
         the confusion matrix (counts for K == 1, the mean over seeds for K > 1), Murphy's
         Brier partition (binary) of the ensemble forecast, whose ``brier`` is
         ``ensemble["brier"]`` (one partition, not K: grouping a million distinct forecasts
-        costs a sort each), notes on undefined metrics; ``flags``
+        costs a sort each), ``per_seed`` (each metric's K per-seed values, NaN where
+        undefined), notes on undefined metrics; ``flags``
         on the primary loss: ``log`` with probabilities, else ``zero_one``.
     """
     inp = _prepare(y_true, n_classes, labels, probabilities, sample_weight)
@@ -1130,6 +1131,8 @@ def classification_report(
     bias_variance = _bias_variance(inp)
     notes = _notes(inp, st)
     details = _details(inp, st, ensemble_inp, notes)
+    # Each seed's value of every metric (as regression's report): the seed-spread chart's dots.
+    details["per_seed"] = {name: values.tolist() for name, values in metrics.items()}
 
     primary = "log" if inp.probabilities is not None else "zero_one"
     if primary == "log":
