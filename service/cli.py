@@ -5,7 +5,7 @@
     heldout tokens create --role ROLE [--group NAME] [--label TEXT]   # prints the token only
     heldout tokens list [--json]
     heldout tokens revoke TOKEN_ID
-    heldout db init
+    heldout db upgrade | check      (init: the same as upgrade)
     heldout serve [--bind HOST:PORT] [--workers N]
     heldout openapi [--write [PATH]]
     heldout settings
@@ -120,13 +120,37 @@ def _tokens_revoke(args: argparse.Namespace) -> int:
     return 0
 
 
-def _db_init(args: argparse.Namespace) -> int:
+def _db_upgrade(args: argparse.Namespace) -> int:
+    from service.store.migrations import UpgradeRefused, upgrade
+
     store = _store(args)
     try:
-        store.init_schema()
+        result = upgrade(store.engine)
+    except UpgradeRefused as exc:
+        print(f"heldout: {exc}", file=sys.stderr)
+        return 1
     finally:
         store.dispose()
-    print("tables ready", file=sys.stderr)
+    if result.adopted:
+        print(f"existing tables match; recorded schema revision {result.after}", file=sys.stderr)
+    elif result.before == result.after:
+        print(f"schema already at revision {result.after}", file=sys.stderr)
+    else:
+        print(f"schema upgraded from {result.before or 'empty'} to {result.after}", file=sys.stderr)
+    return 0
+
+
+def _db_check(args: argparse.Namespace) -> int:
+    from service.store.migrations import SchemaVersionError, check_schema
+
+    store = _store(args)
+    try:
+        print(check_schema(store.engine))
+    except SchemaVersionError as exc:
+        print(f"heldout: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        store.dispose()
     return 0
 
 
@@ -217,8 +241,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     db = commands.add_parser("db", help="database")
     db_commands = db.add_subparsers(dest="db_command", required=True)
-    init = db_commands.add_parser("init", help="create missing tables")
-    init.set_defaults(func=_db_init)
+    init = db_commands.add_parser("init", help="the same as upgrade (kept for old scripts)")
+    init.set_defaults(func=_db_upgrade)
+    upgrade = db_commands.add_parser("upgrade", help="migrate the schema to this version")
+    upgrade.set_defaults(func=_db_upgrade)
+    check = db_commands.add_parser(
+        "check", help="print the schema revision; exit 1 unless it is this version's"
+    )
+    check.set_defaults(func=_db_check)
 
     serve = commands.add_parser("serve", help="run the service under gunicorn")
     serve.add_argument("--bind", help="HOST:PORT (default: HELDOUT_BIND)")

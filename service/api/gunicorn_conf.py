@@ -1,9 +1,10 @@
 """gunicorn settings from the service's own settings table.
 
 Use: ``gunicorn --config python:service.api.gunicorn_conf 'service:create_app()'``.
-Command-line options given to gunicorn override these. The master creates missing tables
-once before forking workers (``on_starting``); each worker opens its own database engine on
-its first request (no ``preload_app``: a pooled connection must not cross a fork). Access
+Command-line options given to gunicorn override these. The master refuses to start unless
+the database is at this version's schema revision (``on_starting``; ``heldout db upgrade``
+migrates), and each worker checks again as it boots on its own database engine (no
+``preload_app``: a pooled connection must not cross a fork). Access
 log lines carry the path without the query string, and never a body.
 """
 
@@ -41,20 +42,26 @@ _START_PAUSE_SECONDS = 2.0
 
 
 def on_starting(server: Any) -> None:
-    """Create missing tables once, in the master, then drop its connections.
+    """Refuse to start unless the database is at this version's schema revision.
 
-    The database may still be starting (a compose stack): retry for about 30 seconds, then
-    give up so that the supervisor restarts the service.
+    Runs once, in the master, before any worker forks. The database may still be starting
+    (a compose stack): connection failures are retried for about 30 seconds, then the
+    master exits so that the supervisor restarts it. A reachable database at another
+    revision (or none) stops the master at once with ``SchemaVersionError``'s message, which
+    names the revision found, the one expected and ``heldout db upgrade``. Nothing here
+    creates or changes a table: migrating is ``heldout db upgrade``'s job.
     """
     from sqlalchemy.exc import OperationalError
 
     from service.store import Store
+    from service.store.migrations import check_schema
 
     store = Store(_settings["DATABASE_URL"])
     try:
         for attempt in range(1, _START_ATTEMPTS + 1):
             try:
-                store.init_schema()
+                revision = check_schema(store.engine)
+                server.log.info("database schema at revision %s", revision)
                 return
             except OperationalError as exc:
                 if attempt == _START_ATTEMPTS:
@@ -69,3 +76,24 @@ def on_starting(server: Any) -> None:
                 time.sleep(_START_PAUSE_SECONDS)
     finally:
         store.dispose()
+
+
+def post_worker_init(worker: Any) -> None:
+    """Check the schema revision again in each worker as it boots, on its own engine.
+
+    A worker started later (after a crash) may find a database that another replica of a
+    newer version has migrated meanwhile; it then fails to boot and gunicorn stops, rather
+    than serving a schema it does not know. An unreachable database does not stop the
+    worker: its requests answer 503 until the database is back.
+    """
+    from sqlalchemy.exc import OperationalError
+
+    from service.api.app import get_store
+    from service.store.migrations import check_schema
+
+    try:
+        check_schema(get_store(worker.wsgi).engine)
+    except OperationalError as exc:
+        worker.log.warning(
+            "schema check skipped: database not reachable (%s)", type(exc.orig).__name__
+        )

@@ -8,10 +8,13 @@ owner. Timestamps are timezone-aware UTC.
 
 from __future__ import annotations
 
+from typing import Any
+
 from sqlalchemy import (
     BigInteger,
     Boolean,
     Column,
+    Connection,
     DateTime,
     Float,
     ForeignKey,
@@ -23,6 +26,8 @@ from sqlalchemy import (
     Table,
     Text,
     UniqueConstraint,
+    event,
+    text,
 )
 
 metadata = MetaData()
@@ -160,6 +165,16 @@ idempotency_keys = Table(
     Column("created_at", DateTime(timezone=True), nullable=False),
     UniqueConstraint("holdout_id", "group_name", "key", name="uq_idempotency_keys_scope"),
 )
+
+
+@event.listens_for(metadata, "after_drop")
+def _forget_revision(_target: MetaData, connection: Connection, **_kw: Any) -> None:
+    """``metadata.drop_all`` empties the database, so Alembic's revision record goes too.
+
+    Otherwise a later upgrade would read the old revision and create nothing.
+    """
+    connection.execute(text("DROP TABLE IF EXISTS alembic_version"))
+
 
 __all__ = [
     "group_states",

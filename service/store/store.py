@@ -261,8 +261,13 @@ class Store:
             self._pid = None
 
     def init_schema(self) -> None:
-        """Create every missing table (idempotent)."""
-        schema.metadata.create_all(self.engine)
+        """Bring the database to the newest schema revision (Alembic migrations; idempotent).
+
+        An empty database gets every table; ``service.store.migrations`` explains the rest.
+        """
+        from .migrations import upgrade
+
+        upgrade(self.engine)
 
     def ping(self) -> None:
         """Run a trivial query; raises if the database is unreachable."""
