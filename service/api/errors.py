@@ -34,7 +34,9 @@ from typing import Any
 import orjson
 from flask import Flask, Response, request
 from marshmallow import ValidationError
-from sqlalchemy.exc import OperationalError
+from psycopg import OperationalError as PsycopgOperationalError
+from sqlalchemy.exc import DBAPIError, OperationalError
+from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from werkzeug.exceptions import HTTPException
 
 from service.ingest import IngestError
@@ -44,6 +46,10 @@ PROBLEM_MEDIA_TYPE = "application/problem+json"
 PROBLEM_TYPE_PREFIX = "tag:heldout,2025:problem/"
 
 log = logging.getLogger("heldout.api")
+
+# Every 503 tells the client when to try again: the database is restarting or the pool is
+# exhausted, and the engine reconnects by itself (pool_pre_ping) once it is back.
+RETRY_AFTER_SECONDS = 5
 
 
 def problem_error(
@@ -163,7 +169,21 @@ def problem_response(
     response = Response(orjson.dumps(body), status=status, mimetype=PROBLEM_MEDIA_TYPE)
     for name, value in (headers or {}).items():
         response.headers[name] = value
+    if status == 503:
+        response.headers.setdefault("Retry-After", str(RETRY_AFTER_SECONDS))
     return response
+
+
+def database_unreachable(exc: BaseException) -> bool:
+    """Whether ``exc`` means the database cannot be reached now (503), rather than a bug.
+
+    A refused or dropped connection (SQLAlchemy's ``OperationalError``, or a statement on a
+    connection the driver reports lost), psycopg's own ``OperationalError`` and the pool's
+    timeout (every connection busy) are; a constraint or programming error is not.
+    """
+    if isinstance(exc, OperationalError | PoolTimeoutError | PsycopgOperationalError):
+        return True
+    return isinstance(exc, DBAPIError) and bool(exc.connection_invalidated)
 
 
 def flatten_messages(messages: Any, prefix: str = "") -> list[dict[str, Any]]:
@@ -220,11 +240,22 @@ def register_error_handlers(app: Flask) -> None:
         field = _REQUEST_FIELDS.get(exc.field, exc.field)
         return problem_response(422, f"{field}: {exc.message}", [problem_error(field, exc.message)])
 
-    @app.errorhandler(OperationalError)
-    def _database_down(exc: OperationalError) -> Response:
-        log.error("database unavailable: %s", type(exc.orig).__name__)
+    @app.errorhandler(DBAPIError)
+    @app.errorhandler(PoolTimeoutError)
+    @app.errorhandler(PsycopgOperationalError)
+    def _database_error(exc: Exception) -> Response:
+        if not database_unreachable(exc):
+            return _unexpected(exc)
+        # Type names only: a driver's message may quote the statement's parameters.
+        cause = getattr(exc, "orig", None)
+        log.error(
+            "database unavailable: %s%s",
+            type(exc).__name__,
+            f" ({type(cause).__name__})" if cause is not None else "",
+        )
         return problem_response(
-            503, "The database cannot be reached; retry later.", headers={"Retry-After": "5"}
+            503,
+            f"The database cannot be reached; retry in {RETRY_AFTER_SECONDS} seconds.",
         )
 
     @app.errorhandler(ValidationError)
@@ -270,6 +301,7 @@ __all__ = [
     "PROBLEM_MEDIA_TYPE",
     "PROBLEM_SLUGS",
     "PROBLEM_TYPE_PREFIX",
+    "RETRY_AFTER_SECONDS",
     "ApiError",
     "BadRequest",
     "Conflict",
@@ -283,6 +315,7 @@ __all__ = [
     "Unauthorized",
     "UnsupportedMediaType",
     "ValidationFailed",
+    "database_unreachable",
     "flatten_messages",
     "problem_error",
     "problem_response",
