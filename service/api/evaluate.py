@@ -57,6 +57,7 @@ class SubmissionInput:
     seeds: list[str]
     train: TrainInput | None
     sweep: tuple[str, float] | None
+    reference: str | None = None  # the submission to compare with, as named by the request
 
     @property
     def n_seeds(self) -> int:
@@ -236,6 +237,7 @@ def from_json(
         seeds=_seed_labels(data["seeds"], n_seeds),
         train=train,
         sweep=None if sweep is None else (sweep["name"], float(sweep["complexity"])),
+        reference=data.get("reference"),
     )
 
 
@@ -273,6 +275,7 @@ def from_table(
         seeds=_seed_labels(list(parsed.seeds) or None, n_seeds),
         train=None,
         sweep=sweep,
+        reference=fields.get("reference"),
     )
 
 

@@ -69,7 +69,7 @@ from service.store.reuse import (
     SliceReport,
 )
 
-from . import evaluate
+from . import evaluate, verdicts
 from .auth import Principal, current_principal, get_store, requires, visible_holdout
 from .errors import Conflict, NotFound, TooManyRequests, ValidationFailed, problem_error
 from .openapi import operation
@@ -118,8 +118,11 @@ _SWEEP_NUMBERS = ("test_loss", "test_loss_se", "train_loss", "bias", "variance")
 
 
 def policy_of(holdout: HoldoutRecord) -> dict[str, Any]:
-    """The holdout's policy with every reuse setting present."""
-    return {**POLICY_DEFAULTS, **holdout.policy}
+    """The holdout's policy with every reuse setting present (and ``gates``), without the
+    holdout-wide reference kept beside it (``verdicts.REFERENCE_KEY``)."""
+    policy = {**POLICY_DEFAULTS, "gates": [], **holdout.policy}
+    policy.pop(verdicts.REFERENCE_KEY, None)
+    return policy
 
 
 def reuse_policy(policy_in: Mapping[str, Any]) -> dict[str, Any]:
@@ -195,6 +198,11 @@ def _mask(arrays: HoldoutArrays) -> NDArray[np.bool_]:
             "This holdout was registered without a feedback/reserve split; register it again."
         )
     return arrays.feedback_mask
+
+
+def submitter_decimals(holdout: HoldoutRecord) -> int | None:
+    """Decimals of every number the holdout's submitters see (None: exact, guard ``none``)."""
+    return _decimals(policy_of(holdout))
 
 
 def _decimals(policy: Mapping[str, Any]) -> int | None:
@@ -430,8 +438,10 @@ def submission_view(
     policy = policy_of(holdout)
     if guard is None:
         guard = reuse.guard_records(store, [record.id]).get(record.id)
+    shown_id = record.id if guard is None else guard.shown_submission_id
     if principal.role != "submitter":
-        parts = reuse.slice_reports(store, [record.id]).get(record.id, {})
+        parts_by_id = reuse.slice_reports(store, [record.id, shown_id])
+        parts = parts_by_id.get(record.id, {})
         out = submission_out(record, holdout, principal)
         views = {
             name: _slice_view(name, part.report, part.primary_value, submitter=False, decimals=None)
@@ -441,11 +451,18 @@ def submission_view(
         views[FULL] = _slice_view(
             FULL, record.report, record.primary_value, submitter=False, decimals=None
         )
-        out.update(slice=FULL, guard=_guard_out(guard, policy), views=views)
+        out.update(
+            slice=FULL,
+            guard=_guard_out(guard, policy),
+            views=views,
+            verdict=verdicts.group_verdict(parts_by_id, record, guard),
+            verdicts_by_slice=verdicts.slice_verdicts(
+                parts, record, submitter=False, closed=holdout.closed_at is not None
+            ),
+        )
         return out
 
     decimals = _decimals(policy)
-    shown_id = record.id if guard is None else guard.shown_submission_id
     parts_by_id = reuse.slice_reports(store, [shown_id, record.id])
     feedback = parts_by_id[shown_id][FEEDBACK]
     report = feedback.report if decimals is None else round_nested(feedback.report, decimals)
@@ -457,7 +474,15 @@ def submission_view(
         views[RESERVE] = _slice_view(
             RESERVE, reserve.report, reserve.primary_value, submitter=True, decimals=decimals
         )
-    out.update(slice=FEEDBACK, guard=_guard_out(guard, policy), views=views)
+    out.update(
+        slice=FEEDBACK,
+        guard=_guard_out(guard, policy),
+        views=views,
+        verdict=verdicts.group_verdict(parts_by_id, record, guard),
+        verdicts_by_slice=verdicts.slice_verdicts(
+            parts_by_id[record.id], record, submitter=True, closed=holdout.closed_at is not None
+        ),
+    )
     return out
 
 
@@ -600,6 +625,12 @@ def standings_view(store: Store, holdout: HoldoutRecord, principal: Principal) -
         interval = part.report.get("intervals", {}).get(metric)
         return {
             "group": best.group,
+            "verdict_status": verdicts.status_of(
+                part,
+                verdicts.SUBMITTER_VERDICT
+                if submitter or slice_name == FEEDBACK
+                else verdicts.VERDICT,
+            ),
             "value": _round(part.primary_value, decimals),
             "interval": None if interval is None else _rounded(interval, decimals),
             "submission_id": best.record.id if own else None,
@@ -611,9 +642,15 @@ def standings_view(store: Store, holdout: HoldoutRecord, principal: Principal) -
     live = []
     for best in bests:
         e = entry(best, FEEDBACK)
-        e.update(reserve_value=None, reserve_interval=None, feedback_tuned=None)
+        e.update(
+            reserve_value=None,
+            reserve_interval=None,
+            feedback_tuned=None,
+            reserve_verdict_status=None,
+        )
         if not submitter:
             reserve = parts[best.record.id][RESERVE]
+            e["reserve_verdict_status"] = verdicts.status_of(reserve, verdicts.VERDICT)
             e["reserve_value"] = reserve.primary_value
             e["reserve_interval"] = reserve.report.get("intervals", {}).get(metric)
             e["feedback_tuned"] = _tuned(losses.get(best.record.id), mask, row_loss)
@@ -780,6 +817,7 @@ __all__ = [
     "split_errors",
     "standings_view",
     "store_submission",
+    "submitter_decimals",
     "submission_view",
     "summaries_view",
     "sweep_source",

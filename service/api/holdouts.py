@@ -2,13 +2,16 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import pyarrow as pa
 import pyarrow.csv as pacsv
 from flask import Blueprint, Response, request, url_for
 
 from service.scoring import catalog
+from service.store import SubmissionRecord
 
-from . import guarding, registration
+from . import guarding, registration, verdicts
 from .auth import current_principal, get_store, may_see_holdout, requires, visible_holdout
 from .bodies import (
     CSV,
@@ -34,6 +37,8 @@ from .schemas import (
     HoldoutMultipart,
     HoldoutOut,
     HoldoutUploadFields,
+    ReferenceOut,
+    ReferenceSet,
 )
 
 bp = Blueprint("holdouts", __name__, url_prefix="/v1/holdouts")
@@ -182,3 +187,74 @@ def get_ids(holdout_id: str) -> Response:
         response = respond_body(body)
     response.headers["Vary"] = "Accept, Authorization"
     return response
+
+
+# --------------------------------------------------------------- holdout-wide reference
+
+_REFERENCE_DESCRIPTION = """\
+The holdout-wide reference submission (the current champion): the comparison gates of the
+holdout's policy compare each new submission with it when the submission names no
+`reference` of its own. Any submission to this holdout, of any group; under the Ladder one
+whose feedback scores were reported (`guard.improved` true), since a comparison's difference
+would otherwise give away a withheld loss. Changing it changes no stored verdict: each
+verdict names the reference it was decided against."""
+
+
+def _reference_out(holdout_id: str, record: SubmissionRecord | None) -> dict[str, Any]:
+    return {
+        "holdout_id": holdout_id,
+        "submission": None if record is None else record.id,
+        "group": None if record is None else record.group,
+        "model": None if record is None else record.model,
+    }
+
+
+@bp.get("/<holdout_id>/reference")
+@requires("owner", "admin")
+@operation(
+    summary="The holdout-wide reference submission",
+    tag="holdouts",
+    description=_REFERENCE_DESCRIPTION,
+    response=(200, ReferenceOut),
+    errors=(404,),
+)
+def get_reference(holdout_id: str) -> Response:
+    holdout = visible_holdout(current_principal(), holdout_id)
+    current = holdout.policy.get(verdicts.REFERENCE_KEY)
+    record = None if current is None else get_store().get_submission(current)
+    return respond(ReferenceOut(), _reference_out(holdout.id, record))
+
+
+@bp.put("/<holdout_id>/reference")
+@requires("owner", "admin")
+@operation(
+    summary="Set the holdout-wide reference submission",
+    tag="holdouts",
+    description=_REFERENCE_DESCRIPTION,
+    body={JSON: ReferenceSet},
+    response=(200, ReferenceOut),
+    errors=(400, 404, 415, 422),
+)
+def put_reference(holdout_id: str) -> Response:
+    holdout = visible_holdout(current_principal(), holdout_id)
+    wanted = json_envelope(ReferenceSet())["submission"]
+    store = get_store()
+    record = verdicts.check_reference(store, holdout, wanted, group=None, field="submission")
+    store.set_policy_entry(holdout.id, verdicts.REFERENCE_KEY, record.id)
+    return respond(ReferenceOut(), _reference_out(holdout.id, record))
+
+
+@bp.delete("/<holdout_id>/reference")
+@requires("owner", "admin")
+@operation(
+    summary="Clear the holdout-wide reference submission",
+    tag="holdouts",
+    description="Later submissions that name no reference have none: their comparison "
+    "gates warn. Answers the cleared state (submission null).",
+    response=(200, ReferenceOut),
+    errors=(404,),
+)
+def delete_reference(holdout_id: str) -> Response:
+    holdout = visible_holdout(current_principal(), holdout_id)
+    get_store().set_policy_entry(holdout.id, verdicts.REFERENCE_KEY, None)
+    return respond(ReferenceOut(), _reference_out(holdout.id, None))

@@ -9,6 +9,7 @@ fingerprint, so the labels are never compared in the clear or held twice.
 
 from __future__ import annotations
 
+import copy
 from collections import Counter
 from dataclasses import dataclass
 from typing import Any
@@ -38,7 +39,7 @@ from service.store import (
 )
 from service.store.fingerprint import FORBIDDEN_CHARACTERS
 
-from . import guarding
+from . import guarding, verdicts
 from .errors import Conflict, ValidationFailed, problem_error
 from .schemas import HoldoutPolicy
 
@@ -182,10 +183,15 @@ def prepare(data: HoldoutInput, limits: Limits) -> Prepared:
         errors.append(problem_error("policy.primary_metric", str(exc)))
         metric = None
     groups = policy_in.get("groups")
+    gates = policy_in.get("gates")
+    errors.extend(
+        verdicts.gate_errors(gates, task=task, primary_metric=metric.name if metric else None)
+    )
     policy = {
         "primary_metric": metric.name if metric else None,
         "groups": None if groups is None else sorted(set(groups)),
         **guarding.reuse_policy(policy_in),
+        "gates": [] if gates is None else copy.deepcopy(list(gates)),
     }
 
     classes: list[str] | None = None
@@ -260,7 +266,8 @@ def _differences(existing: HoldoutRecord, prepared: Prepared, store: Store) -> l
         diffs.append("task")
     if existing.classes != prepared.classes:
         diffs.append("classes")
-    if existing.policy != prepared.policy:
+    registered = {k: v for k, v in existing.policy.items() if k != verdicts.REFERENCE_KEY}
+    if {"gates": [], **registered} != prepared.policy:
         diffs.append("policy")
     if not diffs:
         salt = store.holdout_arrays(existing.id).salt

@@ -75,6 +75,33 @@ def _name_field(description: str, **kwargs: Any) -> fields.String:
     )
 
 
+GATES_DESCRIPTION = """\
+Gates that decide each submission's `verdict` (`pass`, `warn` or `fail`), checked in order,
+one reason per gate. Three kinds of JSON object:
+
+- bound: `{"metric": M, "op": OP, "value": V}` with M a metric of the task (not
+  `max_error` or `median_absolute_error`), a bias-variance term `bias_variance.<loss>.<term>`
+  or the shorthand `bias`, `variance`, `variance_share` (the primary decomposition); OP one
+  of `<`, `<=`, `>`, `>=`; V a finite number. Examples: `{"metric":"rmse","op":"<=","value":3.2}`,
+  `{"metric":"variance_share","op":"<=","value":0.5}`.
+- flag: `{"flag": CODE, "min_severity": "warning"|"critical"}`: trips when the submission
+  carries that flag at that severity or worse; an absent flag passes. Example:
+  `{"flag":"generalization_gap","min_severity":"critical"}`.
+- comparison with the reference submission (named in the submission's `reference`, else the
+  holdout-wide one, `PUT /v1/holdouts/{id}/reference`): `{"compare": "non_inferior", "metric":
+  M, "margin": D, "alpha": A}` (not worse than the reference by more than D on the metric's
+  scale, one-sided at A) or `{"compare": "superior", "metric": M, "alpha": A}`. A defaults
+  to 0.05, in (0, 0.5). The reference is compared on its stored per-row loss of the primary
+  metric, so M must be decidable from it: regression `mse`, `rmse`, `r2`; classification by
+  a label metric: `accuracy`; by `log_loss`: `log_loss`; by `brier`, `roc_auc`,
+  `average_precision` or `ece`: `brier`.
+  Example: `{"compare":"non_inferior","metric":"rmse","margin":0.05,"alpha":0.05}`.
+
+Every gate takes `"severity": "fail"` (default) or `"warn"`: what a tripped gate does. A
+gate that cannot be checked (value hidden or undefined, no reference, no finite bound)
+warns. A bad gate is refused at registration with 422 naming `policy.gates[i].<key>`."""
+
+
 # --------------------------------------------------------------------------------- holdouts
 
 
@@ -150,6 +177,13 @@ class HoldoutPolicy(Schema):
         },
     )
 
+    gates = fields.List(
+        fields.Raw(metadata={"type": "object"}),
+        load_default=None,
+        allow_none=True,
+        metadata={"description": GATES_DESCRIPTION},
+    )
+
 
 class HoldoutPolicyOut(Schema):
     primary_metric = fields.String(required=True)
@@ -159,6 +193,11 @@ class HoldoutPolicyOut(Schema):
     decimals = fields.Integer(required=True)
     daily_quota = fields.Integer(allow_none=True, required=True)
     min_rows = fields.Integer(required=True)
+    gates = fields.List(
+        fields.Dict(keys=fields.String()),
+        required=True,
+        metadata={"description": "The gates as registered (empty: every verdict passes)."},
+    )
 
 
 class HoldoutSplitOut(Schema):
@@ -329,6 +368,14 @@ class SweepSpec(Schema):
     )
 
 
+_REFERENCE = {
+    "description": "A submission id (sub_...) to compare with for the holdout's comparison "
+    "gates: one of your own group's submissions on this holdout (under the Ladder one whose "
+    "feedback scores were reported, guard.improved true). Default: the holdout-wide "
+    "reference its owner set, if any."
+}
+
+
 class SubmissionCreate(Schema):
     """Predictions for every holdout row, from one model and one or more seeds."""
 
@@ -365,6 +412,12 @@ class SubmissionCreate(Schema):
     )
     train = fields.Nested(TrainPart, load_default=None, allow_none=True)
     sweep = fields.Nested(SweepSpec, load_default=None, allow_none=True)
+    reference = fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=validate.Length(min=1, max=64),
+        metadata=_REFERENCE,
+    )
 
     @validates("seeds")
     def _distinct_seeds(self, value: list[str] | None, **_: Any) -> None:
@@ -381,6 +434,9 @@ class SubmissionUploadQuery(Schema):
     model = _name_field("Model name, free text.", required=True)
     sweep_name = _name_field("Sweep name (with sweep_complexity).", load_default=None)
     sweep_complexity = FiniteFloat(load_default=None)
+    reference = fields.String(
+        load_default=None, validate=validate.Length(min=1, max=64), metadata=_REFERENCE
+    )
 
     @validates_schema
     def _sweep_together(self, data: dict[str, Any], **_: Any) -> None:
@@ -496,6 +552,138 @@ class SliceViewOut(Schema):
     details = fields.Dict(keys=fields.String(), required=True)
 
 
+class ReasonIntervalOut(Schema):
+    low = fields.Float(allow_none=True, required=True)
+    high = fields.Float(allow_none=True, required=True)
+    level = fields.Float(
+        required=True,
+        metadata={
+            "description": "1 - 2 alpha: the end on the gate's side is the one-sided "
+            "(1 - alpha) confidence bound."
+        },
+    )
+
+
+class GateReasonOut(Schema):
+    """What one gate found."""
+
+    gate = fields.String(
+        required=True,
+        metadata={
+            "description": "The gate in text form, e.g. `rmse <= 3.2`, "
+            "`flag generalization_gap at critical`, `rmse non_inferior margin 0.05 "
+            "alpha 0.05`."
+        },
+    )
+    spec = fields.Dict(
+        keys=fields.String(), required=True, metadata={"description": "The gate as registered."}
+    )
+    kind = fields.String(required=True, validate=validate.OneOf(["bound", "flag", "compare"]))
+    status = fields.String(required=True, validate=validate.OneOf(["pass", "warn", "fail"]))
+    severity = fields.String(
+        required=True,
+        validate=validate.OneOf(["fail", "warn"]),
+        metadata={"description": "What this gate does to the verdict when it trips."},
+    )
+    metric = fields.String(
+        required=True, metadata={"description": "The metric, bias-variance term or flag code."}
+    )
+    value = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "The submission's value (null when hidden or undefined; "
+            "for a flag null); for a comparison the candidate's score."
+        },
+    )
+    op = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Bound: the gate's operator. Comparison: the relation the "
+            "one-sided confidence bound of the difference must have to `bound`."
+        },
+    )
+    bound = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Bound: the threshold. Comparison: the threshold of the "
+            "difference (-margin for scores, +margin for errors and losses, 0 for "
+            "superior)."
+        },
+    )
+    message = fields.String(required=True)
+    difference = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Comparison: metric(this) - metric(reference) on the rows "
+            "of the verdict's slice."
+        },
+    )
+    interval = fields.Nested(ReasonIntervalOut, allow_none=True, required=True)
+    p_value = fields.Float(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Comparison: two-sided p-value of no difference."},
+    )
+    alpha = fields.Float(allow_none=True, required=True)
+    reference = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Comparison: the reference submission compared with."},
+    )
+    details = fields.Dict(
+        keys=fields.String(),
+        required=True,
+        metadata={
+            "description": "Comparison: method, confidence_bound, one-sided p-value "
+            "(t-based methods), n_rows. Flag: flag_severity."
+        },
+    )
+
+
+class VerdictOut(Schema):
+    """One word a pipeline can branch on, and why."""
+
+    status = fields.String(required=True, validate=validate.OneOf(["pass", "warn", "fail"]))
+    slice = fields.String(
+        required=True,
+        validate=validate.OneOf(["feedback", "reserve", "full"]),
+        metadata={"description": "Rows the verdict's numbers and comparisons describe."},
+    )
+    based_on = fields.String(
+        required=True,
+        metadata={
+            "description": "The submission whose numbers the verdict reads: this one, "
+            "or under the Ladder the group's best when this one did not improve (its "
+            "verdict is then the best's, as its scores are)."
+        },
+    )
+    reference = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={"description": "The reference submission of the comparison gates, or null."},
+    )
+    note = fields.String(
+        required=True,
+        metadata={"description": "Empty, or why the verdict is another submission's (Ladder)."},
+    )
+    reasons = fields.List(fields.Nested(GateReasonOut), required=True)
+
+
+_VERDICT = {
+    "description": "The verdict as the group that submitted is told: on the feedback slice, "
+    "through the holdout's guard (rounded numbers; under the Ladder a non-improving "
+    "submission gets its group's best's verdict). Owners and admins see the same here."
+}
+_VERDICTS_BY_SLICE = {
+    "description": "Owners and admins: exact verdicts on `feedback`, `reserve` and `full`. "
+    "Submitters: empty while the holdout is open; `reserve` (rounded) after it is closed."
+}
+
+
 class SubmissionResult(Schema):
     """A scored submission: everything the scoring core reports, and nothing per row."""
 
@@ -557,6 +745,13 @@ class SubmissionResult(Schema):
             "description": "Owners and admins: `feedback`, `reserve` and `full`. Submitters: "
             "empty while the holdout is open; `reserve` after it is closed."
         },
+    )
+    verdict = fields.Nested(VerdictOut, required=True, metadata=_VERDICT)
+    verdicts_by_slice = fields.Dict(
+        keys=fields.String(),
+        values=fields.Nested(VerdictOut),
+        required=True,
+        metadata=_VERDICTS_BY_SLICE,
     )
 
 
@@ -636,6 +831,19 @@ class StandingsEntry(Schema):
         required=True,
         metadata={"description": "Owners and admins: adaptive overfitting to the feedback slice."},
     )
+    verdict_status = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "The best submission's verdict status as its group was told "
+            "(pass, warn, fail)."
+        },
+    )
+    reserve_verdict_status = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={"description": "Owners and admins: its exact verdict on the reserve slice."},
+    )
 
 
 class FinalStandingsEntry(Schema):
@@ -651,6 +859,14 @@ class FinalStandingsEntry(Schema):
     model = fields.String(allow_none=True, required=True)
     n_submissions = fields.Integer(required=True)
     created_at = fields.DateTime(required=True)
+    verdict_status = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={
+            "description": "Its verdict status on the reserve slice (rounded numbers "
+            "for submitters)."
+        },
+    )
 
 
 class Standings(Schema):
@@ -726,6 +942,33 @@ class SweepOut(Schema):
             "feedback curve uses only the submissions the Ladder accepted."
         },
     )
+
+
+class ReferenceSet(Schema):
+    """The holdout-wide reference submission (the current champion)."""
+
+    class Meta:
+        unknown = RAISE
+
+    submission = fields.String(
+        required=True,
+        validate=validate.Length(min=1, max=64),
+        metadata={
+            "description": "A submission id on this holdout, of any group (under the "
+            "Ladder one whose feedback scores were reported, guard.improved true)."
+        },
+    )
+
+
+class ReferenceOut(Schema):
+    holdout_id = fields.String(required=True)
+    submission = fields.String(
+        allow_none=True,
+        required=True,
+        metadata={"description": "The holdout-wide reference submission id; null: none."},
+    )
+    group = fields.String(allow_none=True, required=True)
+    model = fields.String(allow_none=True, required=True)
 
 
 # ----------------------------------------------------------------------------------- health

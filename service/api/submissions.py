@@ -11,7 +11,7 @@ from service.scoring.sweep import SweepInput, complexity_sweep
 from service.store import HoldoutRecord, NewSubmission, Store, SubmissionRecord
 from service.store.reuse import GuardRecord
 
-from . import evaluate, guarding, idempotency
+from . import evaluate, guarding, idempotency, verdicts
 from .auth import (
     Principal,
     current_principal,
@@ -69,6 +69,13 @@ The response holds the scores of the holdout's feedback slice as its guard repor
 before the holdout is closed, and never a label, a per-row loss or a per-row residual.
 A closed holdout answers 409; a group over its daily quota 429 with `Retry-After`.
 
+`verdict` is `pass`, `warn` or `fail` with one reason per gate of the holdout's policy
+(`policy.gates`), decided on the numbers this response shows (feedback slice, through the
+guard). Comparison gates compare with `reference` (JSON field, or query/form field for
+tables): one of the group's own submissions on this holdout (under the Ladder one with
+`guard.improved` true); without it, the holdout-wide reference its owner set, if any. A
+reference that is unknown, another group's or on another holdout is 422 naming `reference`.
+
 Large submissions: send Parquet (several times faster than CSV to upload and parse, and far
 faster than JSON). Retries: send an `Idempotency-Key`; a retry with the same key and the
 same request returns the first result (201, same id, `Idempotent-Replayed: true`) and
@@ -78,7 +85,7 @@ _IDEMPOTENCY_KEY = {
     "name": "Idempotency-Key",
     "required": False,
     "description": "A key unique to this request, chosen by the client (an RFC 8941 String "
-    "such as \"4f8d...\", or the bare text): 1-255 printable ASCII characters. Scoped to the "
+    'such as "4f8d...", or the bare text): 1-255 printable ASCII characters. Scoped to the '
     "token's group and the holdout; kept while the holdout exists.",
     "schema": {"type": "string", "minLength": 1, "maxLength": 257},
 }
@@ -136,8 +143,23 @@ def create_submission(holdout_id: str) -> Response:
         del table
         release_table_memory()
     mark("convert_align")  # Server-Timing phases (timing.py)
+    gates = verdicts.gates_of(holdout)
+    reference = verdicts.resolve_reference(
+        store, holdout, gates, group=principal.group, named=sub.reference
+    )
     options = evaluate.options_from(current_app.config)
     result, slices = guarding.score_slices(holdout, arrays, sub, options)
+    assert arrays.feedback_mask is not None  # score_slices refuses a holdout without a split
+    report, slices = verdicts.with_verdicts(
+        gates,
+        full_report=result.report,
+        slices=slices,
+        mask=arrays.feedback_mask,
+        labels=arrays.labels,
+        row_losses=result.row_losses,
+        reference=reference,
+        decimals=guarding.submitter_decimals(holdout),
+    )
     mark("score")
     new = NewSubmission(
         holdout_id=holdout.id,
@@ -149,7 +171,7 @@ def create_submission(holdout_id: str) -> Response:
         sweep_complexity=None if sub.sweep is None else sub.sweep[1],
         primary_metric=holdout.policy["primary_metric"],
         primary_value=result.primary_value,
-        report=result.report,
+        report=report,
         row_loss=result.row_loss,
         row_losses=result.row_losses,
         idempotency_key=None if key is None else key.key,

@@ -434,6 +434,34 @@ class Store:
         with self.engine.connect() as conn:
             return [self._holdout(row) for row in conn.execute(query)]
 
+    def set_policy_entry(self, holdout_id: str, key: str, value: Any) -> HoldoutRecord:
+        """Set (or, with None, remove) one entry of a holdout's policy JSON; the new record.
+
+        For the few policy entries that change after registration (the holdout-wide
+        reference submission); read and written in one transaction, the row locked on
+        PostgreSQL so two concurrent changes do not lose one.
+        """
+        h = schema.holdouts
+        with self.engine.begin() as conn:
+            row = conn.execute(
+                sa.select(h.c.policy).where(h.c.id == holdout_id).with_for_update()
+            ).first()
+            if row is None:
+                raise KeyError(holdout_id)
+            policy = orjson.loads(row.policy)
+            if value is None:
+                policy.pop(key, None)
+            else:
+                policy[key] = value
+            conn.execute(
+                h.update()
+                .where(h.c.id == holdout_id)
+                .values(policy=orjson.dumps(policy, option=orjson.OPT_SORT_KEYS).decode())
+            )
+        record = self.get_holdout(holdout_id)
+        assert record is not None
+        return record
+
     def holdout_arrays(self, holdout_id: str) -> HoldoutArrays:
         """The sealed ids, labels and salt of a holdout (decoded once per process)."""
         engine = self.engine  # after a fork this also empties the inherited cache

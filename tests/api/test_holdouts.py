@@ -44,6 +44,7 @@ def test_register_regression(owner: Any) -> None:
         "decimals": 4,
         "daily_quota": None,
         "min_rows": 30,
+        "gates": [],
     }
     assert out["closed_at"] is None and out["salt"] is None
     assert out["split"]["feedback_rows"] + out["split"]["reserve_rows"] == out["n_rows"]

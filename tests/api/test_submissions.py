@@ -67,6 +67,8 @@ RESULT_KEYS = {
     "slice",
     "guard",
     "views",
+    "verdict",
+    "verdicts_by_slice",
 }
 DECIMALS = 4  # the default policy's: submitters see every number rounded to it
 
