@@ -48,6 +48,15 @@ def _log_level(text: str) -> str:
     return value
 
 
+def _secret_key(text: str) -> str:
+    if len(text) < 32:
+        raise ValueError(
+            "must be at least 32 characters (e.g. `python3 -c 'import secrets; "
+            "print(secrets.token_hex(32))'`)"
+        )
+    return text
+
+
 @dataclass(frozen=True)
 class Setting:
     """One setting: ``key`` in the app config, ``env`` in the environment."""
@@ -111,6 +120,14 @@ SETTINGS: tuple[Setting, ...] = (
         "Holdouts whose decoded ids and labels one worker keeps in memory (immutable data).",
     ),
     Setting("LOG_LEVEL", "INFO", _log_level, "Log level of the service's own logger."),
+    Setting(
+        "SECRET_KEY",
+        "",
+        _secret_key,
+        "Signs the pages' sign-in session cookie (at least 32 characters). Give every process "
+        "and replica the same value; unset, the pages refuse sign-in (a key made per process "
+        "would not be shared by gunicorn's workers). The API's tokens do not need it.",
+    ),
 )
 
 SETTINGS_BY_KEY: dict[str, Setting] = {s.key: s for s in SETTINGS}

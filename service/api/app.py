@@ -43,6 +43,12 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     timing.install(app)
     for module in (health, holdouts, submissions, guarding, docs):
         app.register_blueprint(module.bp)
+    from service.web import register_pages
+
+    from . import charts
+
+    app.register_blueprint(charts.bp)
+    register_pages(app)  # the pages for people (service/web): sign-in session, CSP
 
     @app.after_request
     def _security_headers(response: Response) -> Response:

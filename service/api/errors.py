@@ -17,7 +17,8 @@ Views never build error bodies: they raise. The tree::
     +-- ServiceUnavailable        503  the database cannot be reached
 
 Errors raised by other layers are mapped here too: ``service.ingest.IngestError`` keeps its
-own status and error list, ``service.scoring.ScoringInputError`` becomes 422, marshmallow's
+own status and error list, ``service.scoring.ScoringInputError`` and
+``service.charts.ChartInputError`` become 422, marshmallow's
 ``ValidationError`` 422 with one entry per field, werkzeug's HTTP errors their status, and
 anything unexpected a 500 without internals. The body is always
 ``{type, title, status, detail, errors}`` as ``application/problem+json``; ``type`` is a
@@ -39,6 +40,7 @@ from sqlalchemy.exc import DBAPIError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeoutError
 from werkzeug.exceptions import HTTPException
 
+from service.charts import ChartInputError
 from service.ingest import IngestError
 from service.scoring import ScoringInputError
 
@@ -239,6 +241,15 @@ def register_error_handlers(app: Flask) -> None:
         # Examples are left out: for y_true they would be the holdout's sealed labels.
         field = _REQUEST_FIELDS.get(exc.field, exc.field)
         return problem_response(422, f"{field}: {exc.message}", [problem_error(field, exc.message)])
+
+    @app.errorhandler(ChartInputError)
+    def _chart_error(exc: ChartInputError) -> Response:
+        # A result the chart cannot draw (e.g. a metric undefined for every seed): 422.
+        return problem_response(
+            422,
+            f"Cannot draw this chart: {exc.field}: {exc.message}",
+            [problem_error(exc.field, exc.message)],
+        )
 
     @app.errorhandler(DBAPIError)
     @app.errorhandler(PoolTimeoutError)

@@ -29,6 +29,7 @@ _ATTRIBUTE = "__heldout_operation__"
 _STATUS_TEXT = {
     200: "OK",
     201: "Created",
+    303: "See Other (the pages' redirects)",
     400: "Malformed request",
     401: "No token, or an unknown or revoked one",
     403: "The token's role may not do this",

@@ -190,7 +190,7 @@ def check_reference(
                 problem_error(
                     field,
                     f"{submission_id} is a submission to holdout {record.holdout_id}, not "
-                    f"{holdout.id}; compare with a submission on the same rows",
+                    f"{holdout.id}; name a submission to the same holdout (the same rows)",
                     1,
                     [submission_id],
                 )
