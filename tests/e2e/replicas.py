@@ -203,6 +203,21 @@ def prepare_database(url: str) -> str:
 # -- replicas ------------------------------------------------------------------------------
 
 
+def process_group_members(pgid: int) -> list[int]:
+    """Pids of the running (not zombie) processes in process group ``pgid``, from /proc."""
+    members = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            text = stat.read_text()
+        except OSError:  # the process ended meanwhile
+            continue
+        # "pid (comm) state ppid pgrp ...": comm may hold spaces, so split after its ")".
+        fields = text[text.rindex(")") + 2 :].split()
+        if int(fields[2]) == pgid and fields[0] != "Z":
+            members.append(int(stat.parent.name))
+    return members
+
+
 @dataclass
 class Replica:
     """One gunicorn process group (master and workers) serving the shared database."""
@@ -219,17 +234,20 @@ class Replica:
         return self.server.proc.pid
 
     def kill(self) -> None:
-        """``kill -9`` of the whole process group (the master and every worker), no warning."""
+        """``kill -9`` of the whole process group (the master and every worker), no warning.
+
+        Returns once no process of the group runs any more (bounded: 10 seconds).
+        """
         os.killpg(self.pid, signal.SIGKILL)
         self.server.proc.wait(timeout=10)
+        deadline = time.monotonic() + 10
+        while self.group_alive() and time.monotonic() < deadline:
+            time.sleep(0.05)
 
     def group_alive(self) -> bool:
-        """Whether any process of the replica's process group still exists."""
-        try:
-            os.killpg(self.pid, 0)
-        except ProcessLookupError:
-            return False
-        return True
+        """Whether a process of the replica's process group still runs (zombies excepted:
+        a killed worker stays one until whoever inherited it reaps it)."""
+        return bool(process_group_members(self.pid))
 
     def worker_pids(self) -> list[int]:
         """The master's children (the gunicorn workers), from /proc."""
@@ -316,10 +334,13 @@ class RoundRobin:
         self._local = threading.local()
 
     def next_base(self) -> str:
+        return self.bases[self._take()]
+
+    def _take(self) -> int:
         with self._lock:
-            base = self.bases[self._next % len(self.bases)]
+            index = self._next % len(self.bases)
             self._next += 1
-        return base
+        return index
 
     def _session(self) -> requests.Session:
         session = getattr(self._local, "session", None)
@@ -349,8 +370,10 @@ class RoundRobin:
     def send(self, method: str, path: str, *, failover: bool = False, **kwargs: Any) -> Answer:
         """A request to the next replica in turn (and, with ``failover``, the ones after it)."""
         failed: list[tuple[str, str]] = []
-        for _ in range(len(self.bases) if failover else 1):
-            answer = self.send_to(self.next_base(), method, path, **kwargs)
+        first = self._take()  # then the replicas after it, each once
+        for step in range(len(self.bases) if failover else 1):
+            base = self.bases[(first + step) % len(self.bases)]
+            answer = self.send_to(base, method, path, **kwargs)
             if answer.status is not None or not failover:
                 answer.attempts = failed
                 return answer
@@ -472,6 +495,7 @@ __all__ = [
     "label_cache_counts",
     "postgres_bindir",
     "prepare_database",
+    "process_group_members",
     "run_bounded",
     "running_replicas",
     "scrape_metrics",
