@@ -10,6 +10,8 @@
     heldout openapi [--write [PATH]]
     heldout settings
     heldout verify-fingerprint --salt HEX --fingerprint HEX [--task TASK] FILE
+    heldout holdout create FILE | submit HOLDOUT FILE... | standings HOLDOUT | show SUBMISSION
+        (HTTP client commands: service/cli_client.py)
 
 The database is ``HELDOUT_DATABASE_URL`` (or ``--database-url``). Token commands create
 missing tables first, so ``heldout tokens create`` works on a fresh machine.
@@ -24,6 +26,7 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+from service.cli_client import add_client_commands
 from service.settings import SettingsError, load_settings, markdown_table
 from service.store import ROLES, Store, UnknownTokenError
 
@@ -289,6 +292,8 @@ def build_parser() -> argparse.ArgumentParser:
         "file", help="ids and labels in registration order: .csv, .parquet or .json"
     )
     verify.set_defaults(func=_verify_fingerprint)
+
+    add_client_commands(commands)
     return parser
 
 

@@ -637,7 +637,38 @@ class HeldoutClient:
             params={"limit": str(limit), "offset": str(offset)},
         )
 
+    def sweep(
+        self, holdout_id: str, name: str, *, group: str | None = None, slice: str | None = None
+    ) -> dict[str, Any]:
+        """A complexity sweep's curve with its minimum and one-standard-error choice
+        (``SweepOut``). Owners name the ``group``; ``slice`` feedback, reserve or full."""
+        params = {k: v for k, v in (("group", group), ("slice", slice)) if v is not None}
+        return self._request(
+            "GET",
+            f"/v1/holdouts/{quote(holdout_id, safe='')}/sweeps/{quote(name, safe='')}",
+            params=params or None,
+        )
+
+    def reference(self, holdout_id: str) -> dict[str, Any]:
+        """The holdout-wide reference submission (``ReferenceOut``; ``submission`` null when
+        none is set)."""
+        return self._request("GET", f"/v1/holdouts/{quote(holdout_id, safe='')}/reference")
+
     # -------------------------------------------------------------------- writes
+
+    def set_reference(self, holdout_id: str, submission_id: str) -> dict[str, Any]:
+        """Make a submission the holdout-wide reference (owner token): the current champion
+        that comparison gates test later submissions against when they name none."""
+        return self._request(
+            "PUT",
+            f"/v1/holdouts/{quote(holdout_id, safe='')}/reference",
+            body=orjson.dumps({"submission": submission_id}),
+            headers={"Content-Type": JSON},
+        )
+
+    def clear_reference(self, holdout_id: str) -> dict[str, Any]:
+        """Remove the holdout-wide reference (owner token)."""
+        return self._request("DELETE", f"/v1/holdouts/{quote(holdout_id, safe='')}/reference")
 
     def create_holdout(
         self,
