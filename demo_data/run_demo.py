@@ -21,6 +21,7 @@ Usage: python -m demo_data.run_demo BASE_URL OWNER_TOKEN SUBMITTER_TOKEN_A SUBMI
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import subprocess
@@ -170,7 +171,7 @@ def run(
         print(f"Gates (guard {POLICY['guard']}, so each submission's own verdict shows):",
               file=out)
         for gate in registered["policy"].get("gates", GATES):
-            print(f"   {gate}", file=out)
+            print(f"   {json.dumps(gate)}", file=out)
 
         def submit(client: HeldoutClient, entry: DemoSubmission, **extra: Any) -> dict[str, Any]:
             preds, train = write_files(entry, holdout.ids, workdir)

@@ -564,7 +564,9 @@ def add_client_commands(commands: Any) -> None:
     parent = _connection()
     formatter = argparse.RawDescriptionHelpFormatter
 
-    holdout = commands.add_parser("holdout", help="register or show a holdout (HTTP)")
+    holdout = commands.add_parser(
+        "holdout", help="register or show a holdout, set its reference (HTTP client)"
+    )
     holdout_commands = holdout.add_subparsers(dest="holdout_command", required=True)
     create = holdout_commands.add_parser(
         "create",

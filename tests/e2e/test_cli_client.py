@@ -420,6 +420,24 @@ def test_exit_status_is_the_verdict(server, gated, files, data) -> None:
     assert compared["interval"]["high"] < 1.0  # the upper bound below the margin
 
     # a reference the group cannot use is the service's refusal: 2
-    bad = heldout(server, "submit", gated["id"], str(files["linear"]), "--reference",
-                  "sub_nonexistent")
+    bad, refused = heldout_all(
+        server,
+        (("submit", gated["id"], str(files["linear"]), "--reference", "sub_nonexistent"), {}),
+        (("holdout", "reference", gated["id"], const_result["id"]), {}),  # submitter: 403
+    )
     assert bad.returncode == 2 and bad.stderr.startswith("heldout: ")
+    assert refused.returncode == 2 and refused.stderr.startswith("heldout: 403 ")
+
+    # the owner makes the constant model the holdout-wide reference; a submission naming
+    # none is then compared with it
+    ref = heldout(server, "holdout", "reference", gated["id"], const_result["id"], "--json",
+                  role="owner")
+    assert ref.returncode == 0, ref.stderr
+    assert json.loads(ref.stdout) == api_get(server, f"/v1/holdouts/{gated['id']}/reference",
+                                             role="owner")
+    assert json.loads(ref.stdout)["submission"] == const_result["id"]
+    implicit = heldout(server, "submit", gated["id"], str(files["linear"]), "--json")
+    assert implicit.returncode == 0, implicit.stderr
+    assert json.loads(implicit.stdout)["verdict"]["reference"] == const_result["id"]
+    cleared = heldout(server, "holdout", "reference", gated["id"], "--clear", role="owner")
+    assert cleared.returncode == 0 and cleared.stdout.strip().endswith(": none")
