@@ -49,7 +49,7 @@ def _log_level(text: str) -> str:
 
 
 def _secret_key(text: str) -> str:
-    if len(text) < 32:
+    if text and len(text) < 32:  # empty: unset (the pages refuse sign-in)
         raise ValueError(
             "must be at least 32 characters (e.g. `python3 -c 'import secrets; "
             "print(secrets.token_hex(32))'`)"
