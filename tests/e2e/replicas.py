@@ -295,7 +295,20 @@ def running_replicas(
             if future.exception() is None:
                 stack.push(manager.__exit__)
         servers = [future.result() for future in futures]  # raises a start failure
-        yield [Replica(name, server) for name, server in zip(names, servers, strict=True)]
+        replicas = [Replica(name, server) for name, server in zip(names, servers, strict=True)]
+        # Runs first on exit: every live replica gets SIGTERM at once, so that they stop side
+        # by side (each manager then waits for its own).
+        stack.callback(_terminate, replicas)
+        yield replicas
+
+
+def _terminate(replicas: Sequence[Replica]) -> None:
+    for replica in replicas:
+        if replica.server.proc.poll() is None:
+            try:
+                os.killpg(replica.pid, signal.SIGTERM)
+            except ProcessLookupError:
+                pass
 
 
 # -- client side ---------------------------------------------------------------------------
