@@ -12,13 +12,16 @@ from typing import Any
 
 import numpy as np
 import pytest
-from apidata import Holdout, register, regression_body
+from apidata import Holdout, classification_body, register, regression_body
 from guarddata import holdout_mask, numbers
 from scipy import stats
 from sklearn.datasets import load_diabetes
-from sklearn.metrics import mean_squared_error, r2_score
+from sklearn.metrics import accuracy_score, mean_squared_error, r2_score
 from sklearn.tree import DecisionTreeRegressor
+from statsmodels.stats.contingency_tables import mcnemar
 from statsmodels.stats.weightstats import ttost_paired
+
+from service.scoring.comparison import MCNEMAR_EXACT_BELOW
 
 ALPHA = 0.05
 
@@ -312,6 +315,62 @@ def test_rounded_guard_rounds_every_comparison_number(owner: Any, submitter: Any
             assert round(x, 2) == x, (reason["gate"], x)
     cand, base = _row_losses(cand_p, y)[mask], _row_losses(ref_p, y)[mask]
     _check_mse_reasons(out["verdict"], cand, base, abs_tol=0.005 + 1e-9)
+
+
+def test_accuracy_comparison_is_mcnemar_on_the_feedback_rows(owner: Any, submitter: Any) -> None:
+    body = classification_body(name="species-gated", n=211)
+    body["policy"] = {
+        "guard": "none",
+        "gates": [
+            {"compare": "non_inferior", "metric": "accuracy", "margin": 0.05, "alpha": ALPHA}
+        ],
+    }
+    h = register(owner, body)
+    classes = h.response["classes"]
+    y = np.array([classes.index(v) for v in h.y])
+    rng = np.random.default_rng(23)
+
+    def labels(p_right: float) -> np.ndarray:
+        """One seed: the true class with probability p_right, else another at random."""
+        wrong = (y + rng.integers(1, len(classes), size=y.size)) % len(classes)
+        return np.where(rng.random(y.size) < p_right, y, wrong)
+
+    ref_l, cand_l = labels(0.8), labels(0.6)
+    ref = _submit(
+        submitter, h, {"model": "r", "ids": h.ids, "predictions": [[classes[i] for i in ref_l]]}
+    )
+    out = _submit(
+        submitter,
+        h,
+        {
+            "model": "c",
+            "ids": h.ids,
+            "predictions": [[classes[i] for i in cand_l]],
+            "reference": ref["id"],
+        },
+    )
+    mask = holdout_mask(owner, h, strata=y)
+    (reason,) = out["verdict"]["reasons"]
+    # reference: sklearn.metrics.accuracy_score on the feedback rows
+    want = accuracy_score(y[mask], cand_l[mask]) - accuracy_score(y[mask], ref_l[mask])
+    assert reason["difference"] == pytest.approx(want, abs=1e-12)
+    assert reason["details"]["method"].startswith("mcnemar") and reason["op"] == ">"
+    # reference: statsmodels.stats.contingency_tables.mcnemar on the 2x2 table of
+    # right/wrong pairs (exact binomial below MCNEMAR_EXACT_BELOW discordant rows)
+    a, b = cand_l[mask] == y[mask], ref_l[mask] == y[mask]
+    table = [[int((a & b).sum()), int((a & ~b).sum())], [int((~a & b).sum()), int((~a & ~b).sum())]]
+    discordant = table[0][1] + table[1][0]
+    expected = mcnemar(table, exact=discordant < MCNEMAR_EXACT_BELOW, correction=True).pvalue
+    if table[0][1] == table[1][0]:
+        # Equal discordant counts: the core caps the continuity correction (its documented
+        # difference from statsmodels), giving the exact test's p-value.
+        # reference: scipy.stats.binomtest, the exact McNemar test
+        expected = stats.binomtest(table[0][1], discordant, 0.5).pvalue
+    assert reason["p_value"] == pytest.approx(expected, rel=1e-9)
+    low, high = reason["interval"]["low"], reason["interval"]["high"]
+    assert low <= reason["difference"] <= high
+    # non-inferior within 0.05 exactly when the one-sided lower bound clears -0.05
+    assert reason["status"] == ("pass" if low > -0.05 else "fail")
 
 
 # ------------------------------------------------------------------ reference permissions
