@@ -78,7 +78,9 @@ def _page_headers(response: Response) -> Response:
     if response.mimetype == "text/html":
         response.headers["Content-Security-Policy"] = PAGE_CSP
         response.headers["X-Frame-Options"] = "DENY"
-        response.headers["Referrer-Policy"] = "no-referrer"
+        response.headers["Referrer-Policy"] = (
+            "same-origin"  # "no-referrer" makes forms send Origin: null
+        )
         response.headers["Cache-Control"] = "no-store"
     return response
 
@@ -365,7 +367,7 @@ def sweep_page(holdout_id: str, name: str) -> str:
         "sweep.html",
         holdout=holdout,
         sweep=sweep,
-        chart=_chart("sweep", {"sweep": sweep}, src),
+        curve=_chart("sweep", {"sweep": sweep}, src),
     )
 
 

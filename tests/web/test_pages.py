@@ -267,7 +267,9 @@ def test_sweep_page_matches_the_sweep_json(site: Any, who: str) -> None:
     assert f'id="one-se-complexity">{_num(sweep["one_se_complexity"])}' in html
     for point in sweep["points"]:
         assert _num(point["test_loss"]) in html and _num(point["variance"]) in html
-    image = client.get(f"/holdouts/{h}/charts/sweeps/inverse-alpha.svg{query}")
+    src = f"/holdouts/{h}/charts/sweeps/inverse-alpha.svg{query}"
+    assert f'<img src="{src}"' in html
+    image = client.get(src)
     assert image.status_code == 200 and image.mimetype == "image/svg+xml"
 
 
