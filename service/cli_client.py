@@ -264,6 +264,15 @@ def format_submission(result: Mapping[str, Any]) -> str:
     else:
         lines.append("  flags: none")
     lines += ["", format_verdict(result.get("verdict"), str(result.get("id")))]
+    by_slice = result.get("verdicts_by_slice")
+    if isinstance(by_slice, Mapping) and by_slice:
+        lines.append(
+            "  exact verdicts by slice: "
+            + ", ".join(
+                f"{name} {v.get('status')}" for name, v in by_slice.items()
+                if isinstance(v, Mapping)
+            )
+        )
     return "\n".join(lines)
 
 

@@ -299,6 +299,8 @@ def test_summary_shows_metrics_decomposition_and_standings(server, plain, files,
     assert variance == pytest.approx(mse - bias, rel=1e-3, abs=1e-3)
     assert "flags:" in out
     assert re.search(r"^verdict: PASS .*no gates$", out, flags=re.MULTILINE)  # no gates: pass
+    # owners also see the exact verdict on each slice
+    assert re.search(r"^  exact verdicts by slice: .*full pass", out, flags=re.MULTILINE)
     assert standings.returncode == 0
     assert re.search(r"^\s*1\s+g1\s+", standings.stdout, flags=re.MULTILINE)
 
