@@ -41,6 +41,10 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
 
     register_error_handlers(app)
     timing.install(app)
+    from . import logs, metrics
+
+    logs.install(app)  # request ids and one JSON log line per request
+    metrics.install(app, app.extensions["heldout_store"])  # GET /metrics
     for module in (health, holdouts, submissions, guarding, docs):
         app.register_blueprint(module.bp)
     from service.web import register_pages

@@ -34,7 +34,7 @@ from typing import Any
 
 import orjson
 from flask import Flask, Response, request
-from marshmallow import ValidationError
+from marshmallow import ValidationError, fields
 from psycopg import OperationalError as PsycopgOperationalError
 from sqlalchemy.exc import DBAPIError, OperationalError
 from sqlalchemy.exc import TimeoutError as PoolTimeoutError
@@ -43,6 +43,9 @@ from werkzeug.exceptions import HTTPException
 from service.charts import ChartInputError
 from service.ingest import IngestError
 from service.scoring import ScoringInputError
+
+from . import schemas
+from .logs import request_id
 
 PROBLEM_MEDIA_TYPE = "application/problem+json"
 PROBLEM_TYPE_PREFIX = "tag:heldout,2025:problem/"
@@ -59,6 +62,18 @@ def problem_error(
 ) -> dict[str, Any]:
     """One entry of a problem's ``errors`` list (the same shape ingest errors use)."""
     return {"field": field, "message": message, "count": count, "examples": examples or []}
+
+
+class ProblemBody(schemas.Problem):
+    """A problem body as sent: RFC 9457's members, ``errors``, and the request's id."""
+
+    request_id = fields.String(
+        required=True,
+        metadata={
+            "description": "The request's id (its X-Request-ID, or one made for it); the "
+            "server's log lines for this request carry it."
+        },
+    )
 
 
 class ApiError(Exception):
@@ -168,6 +183,9 @@ def problem_response(
         "detail": detail,
         "errors": errors or [],
     }
+    rid = request_id()
+    if rid is not None:
+        body["request_id"] = rid
     response = Response(orjson.dumps(body), status=status, mimetype=PROBLEM_MEDIA_TYPE)
     for name, value in (headers or {}).items():
         response.headers[name] = value
@@ -314,6 +332,7 @@ __all__ = [
     "PROBLEM_TYPE_PREFIX",
     "RETRY_AFTER_SECONDS",
     "ApiError",
+    "ProblemBody",
     "BadRequest",
     "Conflict",
     "Forbidden",

@@ -11,7 +11,10 @@ log lines carry the path without the query string, and never a body.
 from __future__ import annotations
 
 import os
+import shutil
+import tempfile
 import time
+from pathlib import Path
 from typing import Any
 
 # One BLAS/OpenMP thread per worker process (common practice for multi-process servers): the
@@ -21,6 +24,14 @@ from typing import Any
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
+# prometheus-client's multiprocess mode (service/api/metrics.py): each worker writes its
+# counters under this directory and /metrics sums them. A fresh directory per server start
+# (removed at exit) unless the operator names one, whose stale files are removed at start.
+_METRICS_DIR_MADE = not os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+if _METRICS_DIR_MADE:
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="heldout-metrics-")
+
+from service.api.logs import logconfig as _json_logconfig  # noqa: E402
 from service.settings import load_settings  # noqa: E402
 
 _settings = load_settings(os.environ)
@@ -29,9 +40,12 @@ bind = [_settings["BIND"]]
 workers = _settings["WORKERS"]
 timeout = _settings["TIMEOUT"]
 preload_app = False
-accesslog = "-"
+# Every line on stderr is one JSON object (service/api/logs.py); the service logs one line
+# per request (method, URL rule, status, duration, request id), so gunicorn's access log is
+# off.
+accesslog = None
 errorlog = "-"
-access_log_format = '%(h)s %(t)s "%(m)s %(U)s" %(s)s %(b)s %(M)sms'
+logconfig_dict = _json_logconfig(_settings["LOG_LEVEL"])
 # gunicorn's runtime control socket (one per user home by default) is not used: several
 # instances on one machine would share its path.
 control_socket_disable = True
@@ -56,6 +70,9 @@ def on_starting(server: Any) -> None:
     from service.store import Store
     from service.store.migrations import check_schema
 
+    if not _METRICS_DIR_MADE:  # the operator's directory: last run's counts must not add up
+        for stale in Path(os.environ["PROMETHEUS_MULTIPROC_DIR"]).glob("*.db"):
+            stale.unlink()
     store = Store(_settings["DATABASE_URL"])
     try:
         for attempt in range(1, _START_ATTEMPTS + 1):
@@ -97,3 +114,16 @@ def post_worker_init(worker: Any) -> None:
         worker.log.warning(
             "schema check skipped: database not reachable (%s)", type(exc.orig).__name__
         )
+
+
+def child_exit(server: Any, worker: Any) -> None:
+    """A worker ended: its live-gauge files stop counting (prometheus-client multiprocess)."""
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid)
+
+
+def on_exit(server: Any) -> None:
+    """Remove the metrics directory this configuration made."""
+    if _METRICS_DIR_MADE:
+        shutil.rmtree(os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)

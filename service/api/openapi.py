@@ -19,7 +19,7 @@ from apispec.ext.marshmallow import MarshmallowPlugin
 from flask import Flask
 
 from . import schemas
-from .errors import PROBLEM_MEDIA_TYPE
+from .errors import PROBLEM_MEDIA_TYPE, ProblemBody
 
 F = TypeVar("F", bound=Callable[..., Any])
 
@@ -137,12 +137,12 @@ def build_spec(app: Flask) -> dict[str, Any]:
     spec.components.security_scheme(
         "bearerAuth", {"type": "http", "scheme": "bearer", "description": "hdt_... token"}
     )
-    spec.components.schema("Problem", schema=schemas.Problem)
+    spec.components.schema("Problem", schema=ProblemBody)
     for status, text in _STATUS_TEXT.items():
         if status >= 400:
             spec.components.response(
                 f"Problem{status}",
-                {"description": text, "content": {PROBLEM_MEDIA_TYPE: {"schema": "Problem"}}},
+                {"description": text, "content": {PROBLEM_MEDIA_TYPE: {"schema": ProblemBody}}},
             )
 
     tags: dict[str, None] = {}

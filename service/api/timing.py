@@ -48,6 +48,14 @@ def header_value() -> str | None:
     return ", ".join(f"{name};dur={1000.0 * s:.1f}" for name, s in state["phases"].items())
 
 
+def phase_seconds(phase: str) -> float | None:
+    """Seconds charged to ``phase`` in this request so far; None if never marked (metrics)."""
+    if not has_request_context():
+        return None
+    state = g.get(_KEY)
+    return None if not state else state["phases"].get(phase)
+
+
 def install(app: Flask) -> None:
     """Start the clock before each request; add the header to responses that marked phases."""
 
@@ -63,4 +71,4 @@ def install(app: Flask) -> None:
         return response
 
 
-__all__ = ["HEADER", "header_value", "install", "mark"]
+__all__ = ["HEADER", "header_value", "install", "mark", "phase_seconds"]

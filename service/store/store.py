@@ -16,6 +16,7 @@ import os
 import secrets
 import threading
 from collections import OrderedDict
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from functools import cached_property
@@ -235,6 +236,9 @@ class Store:
         self._lock = threading.Lock()
         self._cache: OrderedDict[str, HoldoutArrays] = OrderedDict()
         self._cache_size = label_cache_size
+        # Called with (hit, arrays) on every holdout_arrays lookup: the API's metrics count
+        # label-cache hits and misses (service/api/metrics.py); None outside the app.
+        self.label_cache_observer: Callable[[bool, HoldoutArrays], None] | None = None
 
     # -- connection lifetime -------------------------------------------------------------
 
@@ -469,7 +473,10 @@ class Store:
             cached = self._cache.get(holdout_id)
             if cached is not None:
                 self._cache.move_to_end(holdout_id)
-                return cached
+        if cached is not None:
+            if self.label_cache_observer is not None:
+                self.label_cache_observer(True, cached)
+            return cached
         d = schema.holdout_data
         with engine.connect() as conn:
             row = conn.execute(sa.select(d).where(d.c.holdout_id == holdout_id)).first()
@@ -490,6 +497,8 @@ class Store:
             self._cache[holdout_id] = arrays
             while len(self._cache) > self._cache_size:
                 self._cache.popitem(last=False)
+        if self.label_cache_observer is not None:
+            self.label_cache_observer(False, arrays)
         return arrays
 
     # -- submissions ---------------------------------------------------------------------

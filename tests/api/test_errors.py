@@ -11,7 +11,7 @@ from apidata import regression_body
 
 from service import create_app
 
-PROBLEM_KEYS = {"type", "title", "status", "detail", "errors"}
+PROBLEM_KEYS = {"type", "title", "status", "detail", "errors", "request_id"}
 
 
 def _problem(r: Any, status: int) -> dict[str, Any]:
