@@ -348,9 +348,21 @@ def format_holdout(holdout: Mapping[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _emit(text: str) -> None:
+    """Write ``text`` and a newline to standard output. A reader that went away
+    (``heldout show ... | head -1``) changes nothing: the command's exit status still
+    reports the verdict or the registration, not the pipe."""
+    try:
+        sys.stdout.write(text + "\n")
+        sys.stdout.flush()
+    except BrokenPipeError:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())  # so the flush at exit does not fail again
+
+
 def print_json(payload: Any) -> None:
     """The service's JSON answer, unchanged, as one object on standard output."""
-    sys.stdout.write(json.dumps(payload, ensure_ascii=False, allow_nan=False) + "\n")
+    _emit(json.dumps(payload, ensure_ascii=False, allow_nan=False))
 
 
 # ------------------------------------------------------------------------ commands
@@ -426,7 +438,7 @@ def _holdout_create(args: argparse.Namespace) -> int:
     if args.json:
         print_json(holdout)
     else:
-        print(format_holdout(holdout))
+        _emit(format_holdout(holdout))
     return EXIT_PASS
 
 
@@ -436,7 +448,7 @@ def _holdout_show(args: argparse.Namespace) -> int:
     if args.json:
         print_json(holdout)
     else:
-        print(format_holdout(holdout))
+        _emit(format_holdout(holdout))
     return EXIT_PASS
 
 
@@ -453,12 +465,12 @@ def _holdout_reference(args: argparse.Namespace) -> int:
     if args.json:
         print_json(answer)
     elif answer.get("submission"):
-        print(
+        _emit(
             f"reference of {answer.get('holdout_id')}: {answer['submission']} "
             f"(model {answer.get('model')}, group {answer.get('group')})"
         )
     else:
-        print(f"reference of {answer.get('holdout_id')}: none")
+        _emit(f"reference of {answer.get('holdout_id')}: none")
     return EXIT_PASS
 
 
@@ -492,7 +504,7 @@ def _report(result: Mapping[str, Any], args: argparse.Namespace) -> int:
     if args.json:
         print_json(result)
     else:
-        print(format_submission(result))
+        _emit(format_submission(result))
     return exit_status(result, strict=args.strict)
 
 
@@ -502,7 +514,7 @@ def _standings(args: argparse.Namespace) -> int:
     if args.json:
         print_json(standings)
     else:
-        print(format_standings(standings))
+        _emit(format_standings(standings))
     return EXIT_PASS
 
 
