@@ -186,9 +186,17 @@ def files(server, data) -> dict[str, Path]:
     }
 
 
-def create_holdout(server, path: Path, name: str, policy: dict[str, Any]) -> dict[str, Any]:
+def create_holdout(
+    server, path: Path, name: str, policy: dict[str, Any], *, policy_file: bool = False
+) -> dict[str, Any]:
+    """``heldout holdout create`` with the policy as JSON text, or as ``@FILE``."""
+    text = json.dumps(policy)
+    if policy_file:
+        where = server["tmp"] / f"{name}.policy.json"
+        where.write_text(text)
+        text = f"@{where}"
     run = heldout(server, "holdout", "create", str(path), "--name", name,
-                  "--policy", json.dumps(policy), "--json", role="owner")
+                  "--policy", text, "--json", role="owner")
     assert run.returncode == 0, run.stderr
     return json.loads(run.stdout)
 
@@ -351,7 +359,8 @@ def gated(server, files) -> dict[str, Any]:
             {"compare": "non_inferior", "metric": "rmse", "margin": 1.0, "alpha": 0.05},
         ],
     }
-    holdout = create_holdout(server, files["holdout"], "diabetes-gated", policy)
+    holdout = create_holdout(server, files["holdout"], "diabetes-gated", policy,
+                             policy_file=True)
     assert holdout["policy"]["gates"] == policy["gates"]
     return holdout
 
