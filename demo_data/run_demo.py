@@ -267,6 +267,7 @@ def run(
 
 
 def main(argv: list[str]) -> None:
+    """Command line: BASE_URL OWNER_TOKEN SUBMITTER_TOKEN_A SUBMITTER_TOKEN_B."""
     if len(argv) != 4:
         sys.exit(__doc__)
     rows = int(os.environ.get("HELDOUT_DEMO_ROWS", "2000"))

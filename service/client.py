@@ -8,6 +8,13 @@ Flask::
     client = HeldoutClient("http://127.0.0.1:8000", token)
     holdout = client.create_holdout("labels.csv", name="crossings-2026", task="regression")
     result = client.submit(holdout["id"], ["preds.parquet"], model="gbm-v3")
+    if result["verdict"]["status"] != "pass": ...   # the gates of the holdout's policy
+
+Reads: ``holdout``, ``holdouts``, ``ids``, ``submission``, ``submissions``, ``standings``,
+``sweep``, ``reference``. Writes: ``create_holdout``, ``submit``, and for owners
+``set_reference`` / ``clear_reference`` (the holdout-wide reference submission that
+comparison gates use when a submission names none). Every method returns the service's JSON
+answer as Python objects.
 
 Errors, one tree::
 
