@@ -13,16 +13,26 @@ Arrays are converted by ``service.ingest``; nothing here looks at a value of an 
 
 from __future__ import annotations
 
+import ctypes
+import ctypes.util
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import orjson
 import pyarrow as pa
-from flask import current_app, request
+from flask import Response as FlaskResponse
+from flask import after_this_request, current_app, request
 from marshmallow import Schema
 from werkzeug.exceptions import RequestEntityTooLarge
 
-from service.ingest import Limits, decode_body, read_table  # noqa: E402
+from service.ingest import (  # noqa: E402
+    Limits,
+    StreamedCsv,
+    decode_body,
+    open_csv_stream,
+    read_table,
+)
 
 from .errors import BadRequest, UnsupportedMediaType, ValidationFailed, problem_error
 from .timing import mark
@@ -147,16 +157,62 @@ def query_fields(schema: Schema) -> dict[str, Any]:
     return schema.load(request.args.to_dict(flat=True))
 
 
+def _short_body(received: int, length: int) -> BadRequest:
+    return BadRequest(
+        f"The body ended after {received} of the {length} bytes Content-Length announced.",
+        [problem_error("body", f"{received} of {length} bytes received", 1)],
+    )
+
+
+class RequestStream:
+    """The request body still on the wire (Content-Length known), read on demand.
+
+    ``read(n)`` gives up to n bytes and b"" once all ``length`` bytes were read; a body
+    that ends early is the same 400 as when it is read whole. ``drain`` reads and drops
+    what is left, so a client still sending gets the answer rather than a reset.
+    """
+
+    def __init__(self, length: int) -> None:
+        self.input = request.environ["wsgi.input"]
+        self.length = length
+        self.received = 0
+
+    def read(self, n: int) -> bytes:
+        want = self.length - self.received if n < 0 else min(n, self.length - self.received)
+        if want <= 0:
+            return b""
+        piece = self.input.read(want)
+        if not piece:
+            raise _short_body(self.received, self.length)
+        self.received += len(piece)
+        return piece
+
+    def drain(self) -> None:
+        try:
+            while self.read(1 << 20):
+                pass
+        except BadRequest:
+            pass
+
+
 def parse_table(
-    data: bytes,
+    data: bytes | RequestStream,
     media_type: str,
     *,
     task: str | None = None,
     id_column: str = "id",
     target_column: str = "y_true",
-) -> pa.Table:
+) -> pa.Table | StreamedCsv:
     """A CSV or Parquet body as an Arrow table. ``task`` (``regression``/``classification``)
-    and the column names let the CSV reader parse number columns directly."""
+    and the column names let the CSV reader parse number columns directly.
+
+    A ``RequestStream`` (``read_body``'s plain CSV submission body) gives a ``StreamedCsv``
+    instead: its header read, its rows still on the wire, for ``submission_from_table``
+    to read a block at a time (its ``Server-Timing`` phase: ``receive_parse``)."""
+    if isinstance(data, RequestStream):
+        return open_csv_stream(
+            data, limits=limits(), task=task, on_read=lambda: mark("receive_parse")
+        )
     return read_table(
         data,
         media_type,
@@ -167,14 +223,32 @@ def parse_table(
     )
 
 
+def _malloc_trim() -> Callable[[int], int] | None:
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+        trim = libc.malloc_trim
+    except (OSError, AttributeError):  # not glibc
+        return None
+    trim.argtypes = [ctypes.c_size_t]
+    trim.restype = ctypes.c_int
+    return trim
+
+
+_MALLOC_TRIM = _malloc_trim()
+
+
 def release_table_memory() -> None:
-    """Hand the memory of freed Arrow tables back to the system.
+    """Hand the memory of freed Arrow tables and conversion scratch back to the system.
 
     Arrow's allocator keeps freed pages for reuse; numpy allocates elsewhere, so a worker
     that scores right after freeing a large table would hold both (measured: about 110 MB on
-    a million-row, ten-seed Parquet upload; ``tests/perf/bench_ingest.py``).
+    a million-row, ten-seed Parquet upload; ``tests/perf/bench_ingest.py``). glibc likewise
+    keeps the freed id-alignment arrays (a few n-long arrays of 8 bytes, below its mmap
+    threshold once it has risen) in its heap unless asked to trim it.
     """
     pa.default_memory_pool().release_unused()
+    if _MALLOC_TRIM is not None:
+        _MALLOC_TRIM(0)
 
 
 @dataclass(frozen=True)
@@ -228,34 +302,76 @@ def multipart_upload(schema: Schema, file_field: str = "file") -> Upload:
     return Upload(fields, data, media_type)
 
 
-@dataclass
 class ReceivedBody:
-    """A request body read once, before it is parsed: what it is, its fields, its bytes.
+    """A request body, before it is parsed: what it is, its fields, its bytes.
 
     ``media_type`` is JSON, CSV or Parquet (a multipart upload's file part gives its own);
     ``fields`` the validated query or form fields of a table upload (empty for JSON);
-    ``data`` the bytes after Content-Encoding. ``take()`` hands the bytes over and drops
+    ``data`` the bytes after Content-Encoding. ``take()`` hands the body over and drops
     this object's reference, so a large body is freed as soon as its parser is done.
+
+    A plain CSV body (a Content-Length, no Content-Encoding) is not read up front: ``take()``
+    gives a ``RequestStream`` that ``parse_table`` reads a block at a time, so the worker
+    never holds the whole text. Reading ``data`` first (an ``Idempotency-Key`` digest)
+    reads it whole, and ``take()`` then gives the bytes.
     """
 
-    media_type: str
-    fields: dict[str, Any]
-    data: bytes
+    def __init__(self, media_type: str, fields: dict[str, Any], data: bytes | None = None,
+                 stream: RequestStream | None = None) -> None:
+        self.media_type = media_type
+        self.fields = fields
+        self._data = data
+        self._stream = stream
 
-    def take(self) -> bytes:
-        data, self.data = self.data, b""
+    @property
+    def data(self) -> bytes:
+        if self._data is None:
+            self._stream = None
+            self._data = raw_body()
+        return self._data
+
+    def take(self) -> bytes | RequestStream:
+        if self._data is None and self._stream is not None:
+            stream, self._stream = self._stream, None
+            return stream
+        data, self._data = self.data, b""
         return data
 
 
+def _streamable_csv() -> RequestStream | None:
+    """The request's body as a ``RequestStream`` when it is a plain CSV body of known length
+    within the limit; None otherwise (it is then read whole, as before)."""
+    length = request.content_length
+    encoding = (request.headers.get("Content-Encoding") or "identity").strip().lower()
+    if not length or length > current_app.config["MAX_BODY_BYTES"] or encoding != "identity":
+        return None
+    stream = RequestStream(length)
+
+    @after_this_request
+    def _drain(response: FlaskResponse) -> FlaskResponse:
+        # A request refused before its body was read (a closed holdout, a quota): read the
+        # rest, so the client gets the answer instead of a connection reset mid-upload.
+        stream.drain()
+        return response
+
+    return stream
+
+
 def read_body(fields_schema: Schema) -> ReceivedBody:
-    """Read a JSON, CSV, Parquet or multipart body; table uploads' fields per ``fields_schema``."""
+    """Read a JSON, CSV, Parquet or multipart body; table uploads' fields per ``fields_schema``.
+
+    A plain CSV body stays on the wire until it is parsed (``ReceivedBody``)."""
     media = body_media_type()
     if media == JSON:
         return ReceivedBody(JSON, {}, raw_body())
     if media == MULTIPART:
         upload = multipart_upload(fields_schema)
         return ReceivedBody(upload.media_type, upload.fields, upload.data)
-    return ReceivedBody(media, query_fields(fields_schema), raw_body())
+    fields = query_fields(fields_schema)
+    stream = _streamable_csv() if media == CSV else None
+    if stream is not None:
+        return ReceivedBody(media, fields, stream=stream)
+    return ReceivedBody(media, fields, raw_body())
 
 
 def json_text(value: str | None, field: str) -> Any:
@@ -278,6 +394,7 @@ __all__ = [
     "PARQUET",
     "TABLE_TYPES",
     "ReceivedBody",
+    "RequestStream",
     "Upload",
     "body_media_type",
     "json_envelope",

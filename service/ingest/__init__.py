@@ -10,6 +10,7 @@ from .arrays import float_matrix, id_array, label_matrix, probability_tensor, ta
 from .body import decode_body
 from .errors import IngestError
 from .limits import DEFAULT_LIMITS, Limits
+from .streaming import StreamedCsv, open_csv_stream
 from .tables import (
     CSV_MEDIA_TYPE,
     PARQUET_MEDIA_TYPE,
@@ -25,6 +26,7 @@ __all__ = [
     "PARQUET_MEDIA_TYPE",
     "IngestError",
     "Limits",
+    "StreamedCsv",
     "SubmissionArrays",
     "align_ids",
     "decode_body",
@@ -32,6 +34,7 @@ __all__ = [
     "holdout_from_table",
     "id_array",
     "label_matrix",
+    "open_csv_stream",
     "probability_tensor",
     "read_table",
     "require_unique_ids",

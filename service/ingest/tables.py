@@ -51,6 +51,7 @@ from .align import align_ids, require_unique_ids
 from .arrays import check_probabilities, check_task, class_array, unknown_labels_error
 from .errors import MAX_EXAMPLES, IngestError, content_error, show_text, show_value
 from .limits import DEFAULT_LIMITS, Limits
+from .streaming import CSV_BLOCK_BYTES, StreamedCsv
 
 CSV_MEDIA_TYPE = "text/csv"
 PARQUET_MEDIA_TYPE = "application/vnd.apache.parquet"
@@ -152,7 +153,7 @@ def _read_csv(body: bytes, limits: Limits, task: str | None, id_column: str,
     _duplicate_columns(names)
     typed = _csv_column_types(names, task, id_column, target_column)
     as_text = {name: pa.string() for name in names}
-    read_options = pacsv.ReadOptions(use_threads=True)
+    read_options = pacsv.ReadOptions(use_threads=True, block_size=CSV_BLOCK_BYTES)
     table = None
     for column_types in ((typed, as_text) if typed != as_text else (as_text,)):
         convert = pacsv.ConvertOptions(
@@ -283,7 +284,7 @@ def _ids(table: pa.Table, id_column: str, limits: Limits) -> NDArray[Any]:
 
 
 def holdout_from_table(
-    table: pa.Table,
+    table: pa.Table | StreamedCsv,
     *,
     task: str,
     id_column: str = ID_COLUMN,
@@ -297,6 +298,8 @@ def holdout_from_table(
     """
     limits = limits or DEFAULT_LIMITS
     check_task(task)
+    if isinstance(table, StreamedCsv):
+        table = table.table()
     names = _check_columns(table, limits)
     for required in (id_column, target_column):
         if required not in names:
@@ -420,8 +423,43 @@ def _layout(names: Sequence[str], task: str, classes: Sequence[str] | None) -> _
     return _Layout(seeds, pred, prob)
 
 
+def _streamed_regression(
+    stream: StreamedCsv, limits: Limits, holdout_ids: NDArray[Any]
+) -> SubmissionArrays | None:
+    """A clean regression CSV read block by block into (K, n) in holdout order, or None
+    when the body must be read whole (anything unusual; ``streaming`` explains)."""
+    names = stream.column_names
+    n = len(holdout_ids)
+    if names is None or stream.task != "regression" or n == 0 or n > limits.max_rows \
+            or ID_COLUMN not in names:
+        return None
+    try:
+        layout = _layout(names, "regression", None)
+    except IngestError:
+        return None
+    if len(layout.seeds) > limits.max_seeds:
+        return None
+    column_types = _csv_column_types(names, stream.task, ID_COLUMN, "y_true")
+    got = stream.regression_predictions(
+        column_types, ID_COLUMN, [layout.pred[s] for s in layout.seeds], n
+    )
+    if got is None:
+        return None
+    id_text, predictions = got
+    try:
+        order = align_ids(holdout_ids, id_text, field=ID_COLUMN)
+    except IngestError:
+        return None
+    del id_text
+    scratch = np.empty(n, dtype=np.float64)
+    for row in predictions:  # into holdout order, one seed at a time
+        np.take(row, order, out=scratch)
+        row[...] = scratch
+    return SubmissionArrays(holdout_ids, predictions, None, None, list(layout.seeds))
+
+
 def submission_from_table(
-    table: pa.Table,
+    table: pa.Table | StreamedCsv,
     *,
     task: str,
     classes: Sequence[str] | None,
@@ -439,10 +477,22 @@ def submission_from_table(
     (K, n) array is copied afterwards, and the submitted ids' numpy form is released as
     soon as they are aligned. Problems with the ids are reported together with problems
     in the value columns (ids first); rows in messages are always the submitted rows.
+
+    ``table`` may be a ``StreamedCsv`` (a CSV body still on the wire): a clean regression
+    submission with ``holdout_ids`` is then read a block at a time, never held whole;
+    anything else reads the body whole first and goes the same way as a table, so a
+    refusal is the same either way.
     """
     check_task(task)
     if task == "classification" and classes is None:
         raise ValueError("classes are required for classification")
+    if isinstance(table, StreamedCsv):
+        if task == "regression" and holdout_ids is not None:
+            streamed = _streamed_regression(table, limits, holdout_ids)
+            if streamed is not None:
+                table.close()
+                return streamed
+        table = table.table()
     names = _check_columns(table, limits)
     if ID_COLUMN not in names:
         raise _missing_column(ID_COLUMN, names)

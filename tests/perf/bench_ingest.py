@@ -1,7 +1,8 @@
 """Benchmark: a million-row, ten-seed regression submission end to end through gunicorn.
 
-Run: ``.venv/bin/python tests/perf/bench_ingest.py [n] [k] [repeats] [--postgres URL]``
-(defaults 1e6, 10, 5; the database is a fresh SQLite file unless a PostgreSQL URL is given).
+Run: ``.venv/bin/python tests/perf/bench_ingest.py [n] [k] [repeats] [--postgres URL] [--keep]``
+(defaults 1e6, 10, 5; the database is a fresh SQLite file unless a PostgreSQL URL is given;
+``--keep`` keeps the temporary directory with the files, else it is removed; ``--help``).
 The last line printed is a JSON object.
 
 What it does, all in one run:
@@ -32,6 +33,10 @@ What it does, all in one run:
    ``/proc/<pid>/status``, reset through ``/proc/<pid>/clear_refs`` just before the request)
    over its resident set before it, divided by the decoded prediction arrays (k * n
    float64). ``peak_memory_ratio`` is the Parquet request's; CSV and JSON have their own keys.
+   ``<fmt>_peak_memory_by_phase``: the same request's resident set sampled every few
+   milliseconds from outside, its highest rise within each ``Server-Timing`` phase (phases
+   placed back to back ending when the response arrived: approximate at their edges), over
+   k * n float64 likewise: which phase sets the peak.
 5. ``stored_bytes_per_submission``: every byte the database holds for one submission (each
    column of each row that belongs to it: report JSON, compressed per-row losses, slice
    reports, guard outcome, metadata), beside the Parquet payload's size.
@@ -52,12 +57,14 @@ import gc
 import io
 import json
 import os
+import shutil
 import signal
 import socket
 import statistics
 import subprocess
 import sys
 import tempfile
+import threading
 import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -232,6 +239,47 @@ def running(server: Server) -> Iterator[Server]:
         server.stop()
 
 
+class RssSampler:
+    """The resident set of a process, read from ``/proc`` every few milliseconds on a
+    thread while a request runs (``with RssSampler(pid) as s: ...``)."""
+
+    def __init__(self, pid: int, every: float = 0.002) -> None:
+        self.pid, self.every = pid, every
+        self.samples: list[tuple[float, int]] = []
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+        self.end = 0.0
+
+    def _run(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self.samples.append((time.perf_counter(), _proc_kb(self.pid, "VmRSS")))
+            except (OSError, KeyError, ValueError):
+                pass
+            time.sleep(self.every)
+
+    def __enter__(self) -> RssSampler:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.end = time.perf_counter()
+        self._stop.set()
+        self._thread.join()
+
+    def peaks_by_phase(self, phases: dict[str, float], base_kb: int, unit: int) -> dict[str, float]:
+        """Highest rise over ``base_kb`` within each phase, in units of ``unit`` bytes."""
+        out: dict[str, float] = {}
+        start = self.end - sum(phases.values()) / 1000.0
+        for name, ms in phases.items():
+            stop = start + ms / 1000.0
+            inside = [kb for t, kb in self.samples if start <= t < stop]
+            if inside:
+                out[name] = round((max(inside) - base_kb) * 1024 / unit, 2)
+            start = stop
+        return out
+
+
 # ------------------------------------------------------------------------------ floor
 
 
@@ -306,8 +354,17 @@ def _post(server: Server, token: str, holdout_id: str, fmt: str, body: bytes) ->
     return requests.post(path, data=body, headers=headers, timeout=REQUEST_TIMEOUT)
 
 
-def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None = None) -> dict:
+def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None = None,
+         keep: bool = False) -> dict:
     directory = Path(tempfile.mkdtemp(prefix="heldout-bench-"))
+    try:
+        return _main(directory, n, k, repeats, database)
+    finally:
+        if not keep:  # about half a gigabyte of files per run
+            shutil.rmtree(directory, ignore_errors=True)
+
+
+def _main(directory: Path, n: int, k: int, repeats: int, database: str | None) -> dict:
     url = database or f"sqlite:///{directory / 'bench.sqlite3'}"
     data = make_data(n, k, directory)
     files = data["files"]
@@ -335,6 +392,7 @@ def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None
     phases: dict[str, list[dict[str, float]]] = {fmt: [] for fmt in FORMATS}
     cpu: dict[str, list[float]] = {fmt: [] for fmt in FORMATS}
     memory: dict[str, float] = {}
+    by_phase: dict[str, dict[str, float]] = {}
     last_id: dict[str, str] = {}
     with running(server):
         r = requests.post(
@@ -415,10 +473,14 @@ def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None
             warm()
             Path(f"/proc/{pid}/clear_refs").write_text("5")
             before_kb = _proc_kb(pid, "VmRSS")
-            resp = _post(server, submitter, holdout_id, fmt, bodies[fmt])
+            with RssSampler(pid) as sampler:
+                resp = _post(server, submitter, holdout_id, fmt, bodies[fmt])
             assert resp.status_code == 201, resp.text[:2000]
             peak_kb = _proc_kb(pid, "VmHWM")
             memory[fmt] = (peak_kb - before_kb) * 1024 / (k * n * 8)
+            by_phase[fmt] = sampler.peaks_by_phase(
+                _server_timing(resp.headers.get("Server-Timing")), before_kb, k * n * 8
+            )
         sizes = stored_bytes(local, last_id["parquet"])
         local.dispose()
 
@@ -462,6 +524,8 @@ def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None
     out["peak_memory_ratio"] = round(memory["parquet"], 2)
     out["peak_memory_ratio_csv"] = round(memory["csv"], 2)
     out["peak_memory_ratio_json"] = round(memory["json"], 2)
+    for fmt in FORMATS:
+        out[f"{fmt}_peak_memory_by_phase"] = by_phase[fmt]
     out["decoded_arrays_mb"] = round(k * n * 8 / 1e6, 1)
     out["stored_bytes_per_submission"] = sum(sizes.values())
     out["stored_bytes_by_table"] = sizes
@@ -472,14 +536,23 @@ def main(n: int = 1_000_000, k: int = 10, repeats: int = 5, database: str | None
 
 
 if __name__ == "__main__":
-    argv = sys.argv[1:]
-    db = None
-    if "--postgres" in argv:
-        i = argv.index("--postgres")
-        db = argv[i + 1]
-        del argv[i : i + 2]
-    numbers = [int(float(a)) for a in argv]
-    result = main(*numbers, database=db)
+    import argparse
+
+    parser = argparse.ArgumentParser(
+        description="Ingest benchmark: one n-row, k-seed regression submission as Parquet, "
+        "CSV and JSON through gunicorn, against a pyarrow-plus-scoring-core floor. The last "
+        "line printed is a JSON object (keys in the module docstring)."
+    )
+    parser.add_argument("n", nargs="?", type=float, default=1_000_000, help="rows (1e6)")
+    parser.add_argument("k", nargs="?", type=int, default=10, help="seeds (10)")
+    parser.add_argument("repeats", nargs="?", type=int, default=5,
+                        help="timed requests per format (5)")
+    parser.add_argument("--postgres", metavar="URL", default=None,
+                        help="a PostgreSQL database to use (its tables are dropped first)")
+    parser.add_argument("--keep", action="store_true",
+                        help="keep the temporary directory (files, database, gunicorn log)")
+    args = parser.parse_args()
+    result = main(int(args.n), args.k, args.repeats, database=args.postgres, keep=args.keep)
     for key, value in result.items():
         print(f"{key}: {value}")
     print(json.dumps(result))
