@@ -342,6 +342,7 @@ def _doc(summary: str, description: str, query: type[Schema], fmt: str) -> Calla
         description=description,
         query=query,
         response=(200, _image_content(fmt)),
+        alternatives={304: ("Not modified: the ETag sent in If-None-Match still holds", {})},
         errors=(404, 422),
         headers=(_IF_NONE_MATCH,),
         response_headers=_ETAG_HEADERS,

@@ -22,15 +22,16 @@ from flask import (
     redirect,
     render_template,
     request,
-    send_file,
     url_for,
 )
-from marshmallow import Schema, fields
+from marshmallow import RAISE, Schema, ValidationError, fields, validate
 
 from service.api import charts, holdouts, submissions
+from service.api.bodies import query_fields
 from service.api.charts import view_json
 from service.api.errors import ApiError, Forbidden
 from service.api.openapi import operation
+from service.api.schemas import PageQuery, SweepQuery
 from service.charts import ChartInputError, render_chart
 
 from . import session as web_session
@@ -61,6 +62,7 @@ def _doc(
     *alternatives: tuple[int, tuple[str, Any]],
     response: tuple[int, Any] = (200, _HTML_BODY),
     body: Mapping[str, Any] | None = None,
+    query: type[Schema] | None = None,
 ) -> Callable[[F], F]:
     """The OpenAPI entry of a page (tag ``pages``: HTML for people, session cookie)."""
     return operation(
@@ -68,6 +70,7 @@ def _doc(
         tag="pages",
         description=description,
         body=body,
+        query=query,
         response=response,
         alternatives=dict(alternatives),
     )
@@ -97,6 +100,17 @@ def signed_in(view: F) -> F:
         return view(*args, **kwargs)
 
     return cast(F, wrapper)
+
+
+@bp.errorhandler(ValidationError)
+def _query_error(exc: ValidationError) -> tuple[str, int]:
+    fields_text = ", ".join(
+        str(k) for k in (exc.messages if isinstance(exc.messages, dict) else {})
+    )
+    detail = f"Fix these query parameters: {fields_text}." if fields_text else str(exc)
+    return render_template(
+        "error.html", status=422, title="The request content is invalid", detail=detail
+    ), 422
 
 
 @bp.errorhandler(ApiError)
@@ -183,17 +197,17 @@ class SignInForm(Schema):
 @_doc(
     "Sign in with a token",
     "Checks the token and the form's CSRF token, then starts a session and redirects "
-    "(303) to `next`. 400: CSRF check failed; 401: unknown or revoked token; 503: the "
+    "(303) to `next`. 400: CSRF check failed; 401: unknown or revoked token; 403: the "
     "server has no `HELDOUT_SECRET_KEY`, so sign-in is off.",
     (400, ("CSRF check failed", _HTML_BODY)),
     (401, ("Unknown or revoked token", _HTML_BODY)),
-    (503, ("Sign-in is off: no HELDOUT_SECRET_KEY", _HTML_BODY)),
+    (403, ("Sign-in is off: the server has no HELDOUT_SECRET_KEY", _HTML_BODY)),
     response=(303, _HTML_BODY),
     body={"application/x-www-form-urlencoded": SignInForm},
 )
 def sign_in() -> Any:
     if not web_session.sign_in_enabled():
-        return _page("sign_in.html", enabled=False, next="/", failed=False), 503
+        return _page("sign_in.html", enabled=False, next="/", failed=False), 403
     if not web_session.csrf_valid():
         return _page("error.html", status=400, title="Form expired", detail=_CSRF_DETAIL), 400
     principal = web_session.sign_in(request.form.get("token", ""))
@@ -260,6 +274,11 @@ def holdout_list() -> str:
     return _page("holdouts.html", holdouts=listing["holdouts"])
 
 
+def _page_link(holdout_id: str, offset: int, limit: int) -> str:
+    query = urlencode({"offset": max(0, offset), "limit": limit})
+    return url_for("pages.holdout_page", holdout_id=holdout_id) + "?" + query
+
+
 @bp.get("/holdouts/<holdout_id>")
 @_doc(
     "Holdout page",
@@ -268,12 +287,19 @@ def holdout_list() -> str:
     "feedback-against-reserve chart.",
     _TO_SIGN_IN,
     _NOT_VISIBLE,
+    _INVALID,
+    query=PageQuery,
 )
 @signed_in
 def holdout_page(holdout_id: str) -> str:
     holdout = view_json(holdouts.get_holdout, holdout_id, query={})
     standings = view_json(submissions.standings, holdout_id, query={})
-    listing = view_json(submissions.list_submissions, holdout_id, query={"limit": "200"})
+    page = query_fields(PageQuery())
+    listing = view_json(
+        submissions.list_submissions,
+        holdout_id,
+        query={"limit": str(page["limit"]), "offset": str(page["offset"])},
+    )
     owner_view = g.principal.role != "submitter"
     slices = None
     if owner_view and standings["entries"]:
@@ -282,6 +308,17 @@ def holdout_page(holdout_id: str) -> str:
             charts.slices_payload(standings),
             url_for("pages.slices_svg", holdout_id=holdout_id),
         )
+    more = page["offset"] + len(listing["submissions"]) < listing["total"]
+    pager = {
+        "first": page["offset"] + 1,
+        "last": page["offset"] + len(listing["submissions"]),
+        "previous": _page_link(holdout_id, page["offset"] - page["limit"], page["limit"])
+        if page["offset"] > 0
+        else None,
+        "next": _page_link(holdout_id, page["offset"] + page["limit"], page["limit"])
+        if more
+        else None,
+    }
     sweeps = sorted(
         {(s["group"], s["sweep"]["name"]) for s in listing["submissions"] if s.get("sweep")}
     )
@@ -292,6 +329,7 @@ def holdout_page(holdout_id: str) -> str:
         submissions=listing,
         owner_view=owner_view,
         slices=slices,
+        pager=pager,
         sweeps=[
             {
                 "group": group,
@@ -304,13 +342,29 @@ def holdout_page(holdout_id: str) -> str:
     )
 
 
-def _submission_chart(kind: str, submission_id: str) -> dict[str, Any]:
+def _submission_chart(kind: str, submission_id: str, slice_name: str | None) -> dict[str, Any]:
     try:
-        payload = charts.submission_chart_payload(kind, submission_id)
+        payload = charts.submission_chart_payload(kind, submission_id, slice_name)
     except ApiError as exc:
         return {"error": exc.detail}
     src = url_for(f"pages.{kind}_svg", submission_id=submission_id)
+    if slice_name is not None:
+        src += "?" + urlencode({"slice": slice_name})
     return _chart(kind, payload, src)
+
+
+class SubmissionPageQuery(Schema):
+    class Meta:
+        unknown = RAISE
+
+    slice = fields.String(
+        load_default=None,
+        validate=validate.OneOf(["feedback", "reserve", "full"]),
+        metadata={
+            "description": "Which of the submission's views to show (default the top level: "
+            "`full` for owners and admins, `feedback` for submitters); one this token sees."
+        },
+    )
 
 
 @bp.get("/submissions/<submission_id>")
@@ -320,29 +374,50 @@ def _submission_chart(kind: str, submission_id: str) -> dict[str, Any]:
     "(with their text and tables), as `GET /v1/submissions/{submission_id}` shows this token.",
     _TO_SIGN_IN,
     _NOT_VISIBLE,
+    _INVALID,
+    query=SubmissionPageQuery,
 )
 @signed_in
 def submission_page(submission_id: str) -> str:
+    args = query_fields(SubmissionPageQuery())
     sub = view_json(submissions.get_submission, submission_id, query={})
+    part = charts.submission_slice(sub, args["slice"])
+    shown = sub["slice"] if part is sub else args["slice"]
     holdout = view_json(holdouts.get_holdout, sub["holdout_id"], query={})
     metrics = [
         {
             "name": name,
             "score": value,
-            "interval": sub["intervals"].get(name),
-            "ensemble": sub["ensemble"].get(name),
-            "train": (sub["train_scores"] or {}).get(name),
+            "interval": part["intervals"].get(name),
+            "ensemble": part["ensemble"].get(name),
+            "train": (part["train_scores"] or {}).get(name),
         }
-        for name, value in sub["scores"].items()
+        for name, value in part["scores"].items()
     ]
+    if part is sub:
+        verdict = sub.get("verdict")
+    else:
+        verdict = (sub.get("verdicts_by_slice") or {}).get(shown) or part.get("verdict")
+    slices = [sub["slice"], *sorted(k for k in (sub.get("views") or {}) if k != sub["slice"])]
     return _page(
         "submission.html",
         sub=sub,
+        part=part,
+        shown=shown,
+        slices=[
+            {
+                "name": name,
+                "current": name == shown,
+                "href": url_for("pages.submission_page", submission_id=submission_id)
+                + ("" if name == sub["slice"] else "?" + urlencode({"slice": name})),
+            }
+            for name in slices
+        ],
         holdout=holdout,
         metrics=metrics,
-        verdict=sub.get("verdict"),
-        decomposition=_submission_chart("decomposition", submission_id),
-        seed_spread=_submission_chart("seed_spread", submission_id),
+        verdict=verdict,
+        decomposition=_submission_chart("decomposition", submission_id, args["slice"]),
+        seed_spread=_submission_chart("seed_spread", submission_id, args["slice"]),
     )
 
 
@@ -354,6 +429,7 @@ def submission_page(submission_id: str) -> str:
     _TO_SIGN_IN,
     _NOT_VISIBLE,
     _INVALID,
+    query=SweepQuery,
 )
 @signed_in
 def sweep_page(holdout_id: str, name: str) -> str:
@@ -376,14 +452,23 @@ def sweep_page(holdout_id: str, name: str) -> str:
 _KINDS = {"decomposition": "decomposition", "seed_spread": "seed-spread"}
 """Chart kind -> the slug in its path (as the API's chart paths)."""
 _IMAGE_ALTERNATIVES = (_TO_SIGN_IN, _NOT_VISIBLE, _INVALID)
+_QUERIES: Mapping[str, type[Schema]] = {
+    "decomposition": charts.DecompositionChartQuery,
+    "seed_spread": charts.SeedSpreadChartQuery,
+}
 
 
-def _image_doc(what: str, fmt: str) -> Callable[[F], F]:
+_NOT_MODIFIED = (304, ("Not modified: the ETag sent in If-None-Match still holds", {}))
+
+
+def _image_doc(what: str, fmt: str, query: type[Schema]) -> Callable[[F], F]:
     return _doc(
         f"{what} for the pages ({fmt.upper()})",
-        "The same chart as the API's path under `/v1`, for this session's token.",
+        "The same chart as the API's path under `/v1` (same query), for this session's token.",
         *_IMAGE_ALTERNATIVES,
+        _NOT_MODIFIED,
         response=(200, {charts.FORMATS[fmt]: {"type": "string"}}),
+        query=query,
     )
 
 
@@ -396,7 +481,9 @@ def _image_routes(fmt: str) -> None:
         submission_image.__name__ = f"{kind}_{fmt}"
         bp.add_url_rule(
             f"/submissions/<submission_id>/charts/{slug}.{fmt}",
-            view_func=_image_doc(f"A submission's {slug} chart", fmt)(signed_in(submission_image)),
+            view_func=_image_doc(f"A submission's {slug} chart", fmt, _QUERIES[kind])(
+                signed_in(submission_image)
+            ),
             methods=["GET"],
         )
 
@@ -412,7 +499,9 @@ def _image_routes(fmt: str) -> None:
     slices_image.__name__ = f"slices_{fmt}"
     bp.add_url_rule(
         f"/holdouts/<holdout_id>/charts/sweeps/<name>.{fmt}",
-        view_func=_image_doc("A sweep's chart", fmt)(signed_in(sweep_image)),
+        view_func=_image_doc("A sweep's chart", fmt, charts.SweepChartQuery)(
+            signed_in(sweep_image)
+        ),
         methods=["GET"],
     )
     bp.add_url_rule(
@@ -421,8 +510,10 @@ def _image_routes(fmt: str) -> None:
             f"The feedback-against-reserve chart for the pages ({fmt.upper()})",
             "Owners and admins; submitters get 403.",
             *_IMAGE_ALTERNATIVES,
+            _NOT_MODIFIED,
             (403, ("Submitters may not see the reserve", _HTML_BODY)),
             response=(200, {charts.FORMATS[fmt]: {"type": "string"}}),
+            query=charts.ChartSizeQuery,
         )(signed_in(slices_image)),
         methods=["GET"],
     )
@@ -433,8 +524,10 @@ for _fmt in charts.FORMATS:
 
 
 def _asset_route(name: str) -> None:
+    data = (STATIC / name).read_bytes()  # a few kilobytes, read once
+
     def asset() -> Response:
-        response = send_file(STATIC / name, mimetype=ASSETS[name], max_age=3600)
+        response = Response(data, mimetype=ASSETS[name])
         response.headers["Cache-Control"] = "public, max-age=3600"
         return response
 

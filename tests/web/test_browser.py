@@ -36,6 +36,8 @@ if not (CHROMIUM.exists() and CHROMEDRIVER.exists()):
 
 from selenium.webdriver.chrome.service import Service  # noqa: E402
 from selenium.webdriver.common.by import By  # noqa: E402
+from selenium.webdriver.support import expected_conditions  # noqa: E402
+from selenium.webdriver.support.ui import WebDriverWait  # noqa: E402
 
 PHONE = {"width": 390, "height": 844, "deviceScaleFactor": 2, "mobile": True}
 
@@ -101,12 +103,17 @@ def _open(driver: Any, url: str, shots: Path, name: str) -> None:
     assert _errors(driver) == []
 
 
+def _arrive(driver: Any, url: str) -> None:
+    """Wait (at most 15 s) until a form's redirect has landed on ``url``."""
+    WebDriverWait(driver, 15).until(expected_conditions.url_to_be(url))
+
+
 def _sign_in(driver: Any, base: str, token: str) -> None:
     driver.delete_all_cookies()
     driver.get(f"{base}/sign-in")
     driver.find_element(By.ID, "token").send_keys(token)
     driver.find_element(By.ID, "sign-in-button").click()
-    assert driver.current_url == f"{base}/holdouts"
+    _arrive(driver, f"{base}/holdouts")
     assert _errors(driver) == []
 
 
@@ -164,7 +171,7 @@ def test_submitter_in_the_browser(browser: Any, base_url: str, site: Any, shots:
     )
     # sign out through the form: the session ends
     browser.find_element(By.CSS_SELECTOR, "form[action='/sign-out'] button").click()
-    assert browser.current_url == f"{base_url}/sign-in"
+    _arrive(browser, f"{base_url}/sign-in")
     browser.get(f"{base_url}/holdouts")
     assert browser.current_url.startswith(f"{base_url}/sign-in")
     assert _errors(browser) == []

@@ -190,7 +190,7 @@ def test_sign_in_is_off_without_a_secret_key(tmp_path: Any) -> None:
     client = app.test_client()
     html = client.get("/sign-in").get_data(as_text=True)
     assert 'id="sign-in-off"' in html and '<form method="post" action="/sign-in"' not in html
-    assert client.post("/sign-in", data={"token": "x", "csrf_token": "y"}).status_code == 503
+    assert client.post("/sign-in", data={"token": "x", "csrf_token": "y"}).status_code == 403
 
 
 def test_owner_pages_show_feedback_and_reserve_side_by_side(site: Any) -> None:
@@ -290,3 +290,36 @@ def test_page_chart_images_follow_the_session(site: Any) -> None:
         site.app.test_client().get(f"/submissions/{sid}/charts/seed-spread.svg").status_code == 303
     )
     assert SECRET_KEY not in own.get_data(as_text=True)
+
+
+def test_submission_page_views_follow_the_json(site: Any) -> None:
+    sid = site.scenario.own[1]
+    owner = signed_in_client(site, "owner")
+    view = _api(site, "owner", f"/v1/submissions/{sid}")
+    for name in ("feedback", "reserve", "full"):
+        page = _html(owner, f"/submissions/{sid}?slice={name}")
+        part = view["views"][name]
+        assert f'id="submission-slice">{name} slice, {part["n_rows"]} rows' in page
+        for metric, value in part["scores"].items():
+            assert f'<th scope="row">{metric}</th><td class="num">{_num(value)}</td>' in page
+        assert f"/submissions/{sid}/charts/decomposition.svg?slice={name}" in page
+    # a submitter's views hold no reserve before close: the page refuses it as the JSON does
+    g1 = signed_in_client(site, "g1")
+    assert "reserve" not in _api(site, "g1", f"/v1/submissions/{sid}")["views"]
+    page = _html(g1, f"/submissions/{sid}?slice=reserve", 422)
+    assert "slice" in page
+    _html(g1, f"/submissions/{sid}?slice=nonsense", 422)
+
+
+def test_holdout_page_pages_through_submissions(site: Any) -> None:
+    h = site.scenario.holdout_id
+    client = signed_in_client(site, "admin")
+    listing = _api(site, "admin", f"/v1/holdouts/{h}/submissions?limit=2&offset=2")
+    page = _html(client, f"/holdouts/{h}?limit=2&offset=2")
+    assert f"Showing 3 to {2 + len(listing['submissions'])} of {listing['total']}" in page
+    for s in listing["submissions"]:
+        assert f"/submissions/{s['id']}" in page
+    first = _api(site, "admin", f"/v1/holdouts/{h}/submissions?limit=2")["submissions"]
+    for s in first:
+        assert f'href="/submissions/{s["id"]}"' not in page.split('id="submissions"')[1]
+    _html(client, f"/holdouts/{h}?limit=0", 422)
