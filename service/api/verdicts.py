@@ -332,6 +332,8 @@ def slice_verdict(
     in holdout order (None: all). ``decimals``: None for the exact verdict; else the report
     and the comparisons are rounded first, so the verdict reads only rounded numbers.
     """
+    if not gates:  # nothing to read: pass, and no rounding of the report
+        return {"status": "pass", "slice": slice_name, "reference": None, "note": "", "reasons": []}
     shown = report if decimals is None else round_nested(dict(report), decimals)
     comparisons: dict[int, Comparison] = {}
     if reference is not None and reference.row_losses is not None:
