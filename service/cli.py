@@ -25,10 +25,14 @@ import os
 import sys
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from service.cli_client import add_client_commands
+from service.roles import ROLES
 from service.settings import SettingsError, load_settings, markdown_table
-from service.store import ROLES, Store, UnknownTokenError
+
+if TYPE_CHECKING:
+    from service.store import Store
 
 GUNICORN_APP = "service:create_app()"
 GUNICORN_CONFIG = "python:service.api.gunicorn_conf"
@@ -46,6 +50,8 @@ def gunicorn_argv(bind: str | None = None, workers: int | None = None) -> list[s
 
 
 def _store(args: argparse.Namespace) -> Store:
+    from service.store import Store
+
     url = args.database_url or load_settings(os.environ)["DATABASE_URL"]
     return Store(url)
 
@@ -110,6 +116,8 @@ def _tokens_list(args: argparse.Namespace) -> int:
 
 
 def _tokens_revoke(args: argparse.Namespace) -> int:
+    from service.store import UnknownTokenError
+
     store = _store(args)
     try:
         store.init_schema()

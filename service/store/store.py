@@ -28,10 +28,11 @@ import sqlalchemy as sa
 from numpy.typing import NDArray
 from sqlalchemy.engine import Engine
 
+from service.roles import ROLES
+
 from . import schema
 from .blobs import decode_array, decode_text, encode_array
 
-ROLES = ("admin", "owner", "submitter")
 TOKEN_PREFIX = "hdt_"
 TOKEN_RANDOM_BYTES = 32
 
