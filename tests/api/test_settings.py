@@ -50,3 +50,11 @@ def test_app_reads_the_environment(monkeypatch: pytest.MonkeyPatch, tmp_path: ob
     app = create_app({"DATABASE_URL": "sqlite://"})
     assert app.config["MAX_BODY_BYTES"] == 12345 == app.config["MAX_CONTENT_LENGTH"]
     assert app.config["DATABASE_URL"] == "sqlite://"
+
+
+def test_readme_settings_table_is_current() -> None:
+    # The README's table is what `heldout settings` prints: a new setting must reach it.
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parents[2] / "README.md").read_text(encoding="utf-8")
+    assert markdown_table().strip() in readme
