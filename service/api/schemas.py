@@ -632,7 +632,10 @@ class GateReasonOut(Schema):
     reference = fields.String(
         allow_none=True,
         required=True,
-        metadata={"description": "Comparison: the reference submission compared with."},
+        metadata={
+            "description": "Comparison: the reference submission compared with "
+            "(`holdout-reference` in a group's verdict when it is another group's)."
+        },
     )
     details = fields.Dict(
         keys=fields.String(),
@@ -664,7 +667,11 @@ class VerdictOut(Schema):
     reference = fields.String(
         allow_none=True,
         required=True,
-        metadata={"description": "The reference submission of the comparison gates, or null."},
+        metadata={
+            "description": "The reference submission of the comparison gates, or null. A "
+            "group's own verdict names another group's submission (the owner's holdout-wide "
+            "reference) `holdout-reference`, not by its id."
+        },
     )
     note = fields.String(
         required=True,

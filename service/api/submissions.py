@@ -159,6 +159,7 @@ def create_submission(holdout_id: str) -> Response:
         row_losses=result.row_losses,
         reference=reference,
         decimals=guarding.submitter_decimals(holdout),
+        group=principal.group,
     )
     mark("score")
     new = NewSubmission(

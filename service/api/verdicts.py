@@ -58,6 +58,9 @@ from .errors import ValidationFailed, problem_error
 REFERENCE_KEY = "reference_submission_id"
 """Key of the holdout-wide reference submission in ``holdouts.policy`` (JSON)."""
 
+OTHER_GROUP_REFERENCE = "holdout-reference"
+"""What a group's verdict names a reference of another group (the owner's champion) by."""
+
 VERDICT = "verdict"
 SUBMITTER_VERDICT = "submitter_verdict"
 
@@ -381,11 +384,15 @@ def with_verdicts(
     row_losses: NDArray[np.float64],
     reference: Reference | None,
     decimals: int | None,
+    group: str | None = None,
 ) -> tuple[dict[str, Any], list[SliceReport]]:
     """The full report and the slice reports with their verdicts, ready to store.
 
     Full: the exact verdict. Feedback and reserve: the exact verdict and the one the group
-    may see (``decimals``: the guard's rounding, None under guard ``none``).
+    may see (``decimals``: the guard's rounding, None under guard ``none``). When the
+    reference is another group's (the owner's holdout-wide reference), the group's verdict
+    names it ``OTHER_GROUP_REFERENCE`` instead of its id: submitters never see another
+    group's submission ids.
     """
     common = {"labels": labels, "candidate_losses": row_losses, "reference": reference}
     full = dict(full_report)
@@ -400,15 +407,30 @@ def with_verdicts(
             gates, part.report, slice_name=part.slice, rows=rows, decimals=None, **common
         )
         report[VERDICT] = exact
-        report[SUBMITTER_VERDICT] = (
+        shown = (
             exact
             if decimals is None
             else slice_verdict(
                 gates, part.report, slice_name=part.slice, rows=rows, decimals=decimals, **common
             )
         )
+        if reference is not None and reference.record.group != group:
+            shown = _without_reference_id(shown)
+        report[SUBMITTER_VERDICT] = shown
         out.append(replace(part, report=report))
     return full, out
+
+
+def _without_reference_id(verdict: Mapping[str, Any]) -> dict[str, Any]:
+    """``verdict`` with the reference's id replaced by ``OTHER_GROUP_REFERENCE``."""
+    out = dict(verdict)
+    if out.get("reference") is not None:
+        out["reference"] = OTHER_GROUP_REFERENCE
+    out["reasons"] = [
+        {**r, "reference": OTHER_GROUP_REFERENCE} if r.get("reference") is not None else r
+        for r in verdict.get("reasons", [])
+    ]
+    return out
 
 
 # ------------------------------------------------------------------------------- views

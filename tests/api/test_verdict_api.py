@@ -415,7 +415,12 @@ def test_reference_permissions(
     assert r.status_code == 200 and r.get_json()["submission"] == theirs["id"]
     assert owner.get(ref_path).get_json()["group"] == "g2"
     out = _submit(submitter, h, _body(h, _preds(h, 300.0, 12)))
-    assert out["verdict"]["reference"] == theirs["id"]
+    # another group's submission id is never shown to this group; the owner sees it
+    assert out["verdict"]["reference"] == "holdout-reference"
+    assert {r["reference"] for r in out["verdict"]["reasons"]} == {"holdout-reference"}
+    assert theirs["id"] not in str(out)
+    by_slice = owner.get(f"/v1/submissions/{out['id']}").get_json()["verdicts_by_slice"]
+    assert by_slice["feedback"]["reference"] == theirs["id"]
     assert out["verdict"]["reasons"][0]["p_value"] is not None
     # a named reference of the group's own wins over it
     named = _submit(submitter, h, _body(h, _preds(h, 300.0, 13), reference=mine["id"]))
