@@ -137,6 +137,13 @@ class HoldoutArrays:
     split_seed: int | None = None
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
 
+    def __post_init__(self) -> None:
+        # Cached and shared by every request of the process: a write would change the
+        # holdout for all of them, so numpy refuses one.
+        for array in (self.ids, self.labels, self.feedback_mask):
+            if array is not None:
+                array.flags.writeable = False
+
     @cached_property
     def sorted_ids(self) -> NDArray:
         """The ids in ascending code-point order: the order ``GET /ids`` publishes.
@@ -145,7 +152,9 @@ class HoldoutArrays:
         so the public order is one that depends on the ids alone.
         """
         with self._lock:
-            return np.sort(self.ids, kind="stable")
+            ordered = np.sort(self.ids, kind="stable")
+            ordered.flags.writeable = False
+            return ordered
 
 
 @dataclass(frozen=True)

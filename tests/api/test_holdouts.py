@@ -346,3 +346,13 @@ def test_labels_are_stored_exactly(store: Any, owner: Any) -> None:
     assert arrays.ids.tolist() == body["ids"]
     np.testing.assert_array_equal(arrays.labels, np.asarray(body["y_true"]))
     assert len(arrays.salt) == 32
+
+
+def test_cached_holdout_arrays_refuse_writes(store: Any, owner: Any) -> None:
+    # One decoded copy serves every request of the process: numpy must refuse a write.
+    h = register(owner, regression_body())
+    arrays = store.holdout_arrays(h.id)
+    assert store.holdout_arrays(h.id) is arrays  # the cached copy
+    for array in (arrays.ids, arrays.labels, arrays.feedback_mask, arrays.sorted_ids):
+        with pytest.raises(ValueError, match="read-only"):
+            array[0] = array[1]
