@@ -326,7 +326,9 @@ class ReceivedBody:
     @property
     def data(self) -> bytes:
         if self._data is None:
-            self._stream = None
+            if self._stream is not None:
+                self._stream.received = self._stream.length  # read here: nothing to drain
+                self._stream = None
             self._data = raw_body()
         return self._data
 

@@ -56,9 +56,9 @@ class BodySource(Protocol):
 class _Spool:
     """What pyarrow reads: the source's bytes, each piece also appended to a temp file.
 
-    Reads are serialized (pyarrow may read ahead on its own thread), so the file always
-    holds exactly the bytes consumed so far, in order. A source error ends the stream
-    (pyarrow sees b"") and is kept in ``error`` for the caller to raise.
+    Reads are serialized by a lock (should pyarrow ever read ahead on a thread of its own),
+    so the file always holds exactly the bytes consumed so far, in order. A source error
+    ends the stream (pyarrow sees b"") and is kept in ``error`` for the caller to raise.
     """
 
     closed = False
@@ -202,7 +202,9 @@ class StreamedCsv:
         try:
             reader = pacsv.open_csv(
                 self.spool,
-                read_options=pacsv.ReadOptions(use_threads=True, block_size=CSV_BLOCK_BYTES),
+                # One thread: the body is read on the caller's thread (a server's input
+                # stream need not be safe to read from another), parsing as fast here.
+                read_options=pacsv.ReadOptions(use_threads=False, block_size=CSV_BLOCK_BYTES),
                 convert_options=pacsv.ConvertOptions(
                     column_types=column_types, null_values=[], strings_can_be_null=False,
                     quoted_strings_can_be_null=False, true_values=[], false_values=[],
