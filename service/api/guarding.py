@@ -492,14 +492,23 @@ def summaries_view(
     """Submission summaries: full-set values for owners, guarded feedback values for groups."""
     policy = policy_of(holdout)
     guards = reuse.guard_records(store, [r.id for r in records])
+    shown = {r.id: (guards[r.id].shown_submission_id if r.id in guards else r.id) for r in records}
+    # The verdict as the group was told (the submission's ``verdict``), for every role.
+    parts = reuse.slice_reports(store, shown.values())
+    status = {
+        r.id: str(verdicts.group_verdict(parts, r, guards.get(r.id))["status"]) for r in records
+    }
     if principal.role != "submitter":
         return [
-            {**summary_out(r), "slice": FULL, "guard": _guard_out(guards.get(r.id), policy)}
+            {
+                **summary_out(r),
+                "slice": FULL,
+                "guard": _guard_out(guards.get(r.id), policy),
+                "verdict_status": status[r.id],
+            }
             for r in records
         ]
     decimals = _decimals(policy)
-    shown = {r.id: (guards[r.id].shown_submission_id if r.id in guards else r.id) for r in records}
-    parts = reuse.slice_reports(store, shown.values(), with_report=False)
     out = []
     for r in records:
         value = _round(parts[shown[r.id]][FEEDBACK].primary_value, decimals)
@@ -508,6 +517,7 @@ def summaries_view(
                 **summary_out(replace(r, primary_value=value)),
                 "slice": FEEDBACK,
                 "guard": _guard_out(guards.get(r.id), policy),
+                "verdict_status": status[r.id],
             }
         )
     return out

@@ -777,6 +777,14 @@ class SubmissionSummary(Schema):
         metadata={"description": "`full` (owners, admins) or `feedback` as the guard reports."},
     )
     guard = fields.Nested(GuardOut, allow_none=True, required=True)
+    verdict_status = fields.String(
+        required=True,
+        validate=validate.OneOf(["pass", "warn", "fail"]),
+        metadata={
+            "description": "Status of the submission's `verdict`: the verdict as its group "
+            "was told (under the Ladder a non-improving submission's is its group's best's)."
+        },
+    )
 
 
 class PageQuery(Schema):

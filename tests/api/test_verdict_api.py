@@ -550,3 +550,18 @@ def test_closed_holdout_shows_submitters_their_reserve_verdict(owner: Any, submi
     assert reserve["reasons"][0]["value"] == pytest.approx(want, abs=0.5e-4 + 1e-9)
     final = submitter.get(f"/v1/holdouts/{h.id}/standings").get_json()["final"]
     assert final[0]["verdict_status"] == reserve["status"] == "pass"
+
+
+def test_listing_shows_each_submissions_verdict_status(owner: Any, submitter: Any) -> None:
+    # Under the Ladder (default policy) a non-improving submission's verdict is its group's
+    # best's; the listing's status is the submission's own `verdict` status for every role.
+    h = _register(owner, [{"metric": "rmse", "op": "<=", "value": 250.0}])
+    made = [_submit(submitter, h, _body(h, _preds(h, s, i))) for i, s in enumerate((900, 100, 600))]
+    assert {m["verdict"]["status"] for m in made} == {"pass", "fail"}
+    path = f"/v1/holdouts/{h.id}/submissions"
+    for user in (owner, submitter):
+        listed = {s["id"]: s["verdict_status"] for s in user.get(path).get_json()["submissions"]}
+        assert listed == {
+            m["id"]: user.get(f"/v1/submissions/{m['id']}").get_json()["verdict"]["status"]
+            for m in made
+        }
