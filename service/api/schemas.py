@@ -528,12 +528,9 @@ class GuardOut(Schema):
     decimals = fields.Integer(allow_none=True, required=True)
 
 
-class SliceViewOut(Schema):
-    """The scoring core's report of a submission on one slice of the holdout's rows."""
+class ReportNumbersOut(Schema):
+    """The scoring core's numbers, as every report shape carries them (shared fields)."""
 
-    slice = fields.String(required=True, validate=validate.OneOf(["feedback", "reserve", "full"]))
-    n_rows = fields.Integer(required=True)
-    primary_value = fields.Float(allow_none=True, required=True)
     scores = fields.Dict(
         keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
     )
@@ -549,6 +546,14 @@ class SliceViewOut(Schema):
     train_scores = fields.Dict(
         keys=fields.String(), values=fields.Float(allow_none=True), allow_none=True, required=True
     )
+
+
+class SliceViewOut(ReportNumbersOut):
+    """The scoring core's report of a submission on one slice of the holdout's rows."""
+
+    slice = fields.String(required=True, validate=validate.OneOf(["feedback", "reserve", "full"]))
+    n_rows = fields.Integer(required=True)
+    primary_value = fields.Float(allow_none=True, required=True)
     details = fields.Dict(keys=fields.String(), required=True)
 
 
@@ -691,7 +696,7 @@ _VERDICTS_BY_SLICE = {
 }
 
 
-class SubmissionResult(Schema):
+class SubmissionResult(ReportNumbersOut):
     """A scored submission: everything the scoring core reports, and nothing per row."""
 
     id = fields.String(required=True)
@@ -705,24 +710,6 @@ class SubmissionResult(Schema):
     created_at = fields.DateTime(required=True)
     primary_metric = fields.String(required=True)
     primary_value = fields.Float(allow_none=True, required=True)
-    scores = fields.Dict(
-        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
-    )
-    intervals = fields.Dict(keys=fields.String(), values=fields.Nested(IntervalOut), required=True)
-    seed_spread = fields.Dict(keys=fields.String(), values=fields.Nested(SpreadOut), required=True)
-    ensemble = fields.Dict(
-        keys=fields.String(), values=fields.Float(allow_none=True), required=True, metadata=_SCORES
-    )
-    bias_variance = fields.Dict(
-        keys=fields.String(), values=fields.Nested(DecompositionOut), required=True
-    )
-    flags = fields.List(fields.Nested(FlagOut), required=True)
-    train_scores = fields.Dict(
-        keys=fields.String(),
-        values=fields.Float(allow_none=True),
-        allow_none=True,
-        required=True,
-    )
     details = fields.Dict(
         keys=fields.String(),
         required=True,
